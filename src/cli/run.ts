@@ -1,0 +1,59 @@
+import type { Command } from "commander";
+import { exitCodeOf } from "../errors.js";
+import { loadPipeline, parseSet } from "../spec/load.js";
+import { runPipeline, type RunReport } from "../run/runner.js";
+import { Progress } from "../run/progress.js";
+import { collect, fail } from "./common.js";
+
+export function printReport(r: RunReport): string {
+  const lines: string[] = [];
+  lines.push(r.status === "ok" ? `run complete: ${r.run_dir}` : `run FAILED (exit ${r.exit_code}); kept for inspection: ${r.run_dir}`);
+  if (r.error) lines.push(r.error);
+  for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rowsLoaded} rows loaded, ${s.rowsRejected} rejected, ${s.rowsFiltered} filtered out`);
+  for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
+  if (r.audit) {
+    lines.push(`audit: ${r.audit.errors} error item(s), ${r.audit.warnings} warning item(s) failed`);
+    for (const c of r.audit.checks) {
+      lines.push(`  ${c.step.padEnd(18)} ${c.check.padEnd(36)} ${c.severity.padEnd(7)} ${String(c.items).padStart(8)} checked ${String(c.failed).padStart(6)} failed${c.worst_residual != null ? `  worst |residual| ${c.worst_residual.toPrecision(3)}` : ""}`);
+    }
+    if (r.audit.worst.length) {
+      lines.push("worst failing items:");
+      for (const w of r.audit.worst) lines.push(`  ${w.step} ${w.check} ${JSON.stringify(w.keys)}${w.year != null ? ` ${w.year}` : ""}: ${w.message}`);
+    }
+  }
+  lines.push("Results are estimates; see the manifest's method and caution before publishing.");
+  return lines.join("\n") + "\n";
+}
+
+export function registerRun(program: Command): void {
+  program
+    .command("run")
+    .description("run a pipeline file and publish its tables, audit table and manifest into a run directory")
+    .argument("<file>", "the pipeline file (YAML)")
+    .option("--out <dir>", "the run directory itself (default runs/<pipeline>/<UTC timestamp>/)")
+    .option("--replace", "swap an existing --out directory for the new run", false)
+    .option("--set <name=value>", "give a variable used as ${NAME} in the file (repeatable)", collect, [] as string[])
+    .option("--quiet", "no progress on stderr", false)
+    .option("--json", "print a machine-readable summary on stdout", false)
+    .option("--threads <n>", "DuckDB threads (default: all cores)", (v) => parseInt(v, 10))
+    .option("--memory-limit <size>", "DuckDB memory limit, e.g. 6GB; beyond it DuckDB spills to disk")
+    .option("--temp-dir <dir>", "where DuckDB spills (default: inside the staging directory)")
+    .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string }) => {
+      let report: RunReport;
+      try {
+        const lp = loadPipeline(file, parseSet(o.set));
+        report = await runPipeline(lp, {
+          out: o.out, replace: o.replace, progress: Progress.forTerminal(o.quiet || o.json),
+          threads: o.threads, memoryLimit: o.memoryLimit, tempDirectory: o.tempDir,
+        });
+      } catch (e) {
+        fail(e, o.json, exitCodeOf(e));
+      }
+      if (o.json) process.stdout.write(JSON.stringify(report) + "\n");
+      else process.stdout.write(printReport(report));
+      if (report.status !== "ok") {
+        if (o.json) process.stderr.write(`cairn: ${report.error}\n`);
+        process.exit(report.exit_code);
+      }
+    });
+}

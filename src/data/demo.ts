@@ -1,0 +1,108 @@
+/**
+ * The built-in demo: an invented scenario (five invented regions, invented figures).
+ * Deterministic: `node dist/data/demo.js DIR` rewrites the same files byte for byte.
+ */
+import { mkdirSync, writeFileSync } from "node:fs";
+import path from "node:path";
+import { mulberry32 } from "./prng.js";
+
+export const REGIONS = ["ALD", "BRV", "COR", "DUN", "EST"] as const; // Aldmark, Brenvale, Corrinth, Dunmoor, Estrava
+const REGION_NAMES: Record<string, string> = { ALD: "Aldmark", BRV: "Brenvale", COR: "Corrinth", DUN: "Dunmoor", EST: "Estrava" };
+export const FIRST_YEAR = 1990;
+export const LAST_YEAR = 2023;
+
+interface Commodity {
+  code: string;
+  label: string;
+  unit: "piece" | "t" | "kt";
+  /** base production per region (in the unit), 1990 */
+  base: Record<string, number>;
+  growth: number;
+  tradeShare: number;
+}
+
+const COMMODITIES: Commodity[] = [
+  { code: "C100", label: "passenger vehicles", unit: "piece", base: { ALD: 120000, BRV: 40000, COR: 0, DUN: 15000, EST: 5000 }, growth: 0.025, tradeShare: 0.35 },
+  { code: "C200", label: "structural steel sections", unit: "kt", base: { ALD: 800, BRV: 450, COR: 300, DUN: 120, EST: 60 }, growth: 0.02, tradeShare: 0.2 },
+  { code: "C210", label: "cement", unit: "kt", base: { ALD: 2500, BRV: 1800, COR: 2200, DUN: 600, EST: 400 }, growth: 0.015, tradeShare: 0.05 },
+  { code: "C300", label: "industrial machinery", unit: "kt", base: { ALD: 150, BRV: 90, COR: 20, DUN: 10, EST: 30 }, growth: 0.03, tradeShare: 0.4 },
+  { code: "C400", label: "beverage cans", unit: "kt", base: { ALD: 40, BRV: 25, COR: 30, DUN: 8, EST: 6 }, growth: 0.035, tradeShare: 0.25 },
+  { code: "C410", label: "plastic film packaging", unit: "kt", base: { ALD: 60, BRV: 45, COR: 50, DUN: 15, EST: 10 }, growth: 0.04, tradeShare: 0.2 },
+];
+
+/** A code that the concordance does not cover: it must show up as unmapped, not vanish. */
+const UNMAPPED = { code: "C999", label: "unclassified goods" };
+
+function fmt(x: number): string {
+  return Number.isInteger(x) ? String(x) : x.toFixed(3);
+}
+
+export function generateDemo(dir: string, seed = 20261201): void {
+  const rnd = mulberry32(seed);
+  mkdirSync(dir, { recursive: true });
+  const prod: string[] = ["region,commodity,year,quantity"];
+  const trade: string[] = ["reporter,partner,commodity,flow,year,quantity,unit"];
+  for (const c of COMMODITIES) {
+    for (const r of REGIONS) {
+      for (let y = FIRST_YEAR; y <= LAST_YEAR; y++) {
+        const b = c.base[r]!;
+        if (b === 0) continue;
+        const q = b * Math.pow(1 + c.growth, y - FIRST_YEAR) * (0.92 + 0.16 * rnd());
+        // production file is in kt (pieces for vehicles are converted by the demo to kt via the concordance's unit mass)
+        const qty = c.unit === "piece" ? Math.round(q) : q;
+        prod.push([r, c.code, y, c.unit === "piece" ? fmt(qty * 1.35 / 1000) : fmt(qty)].join(","));
+      }
+    }
+  }
+  // Bilateral trade: each exporter sends a share of its production to each partner.
+  for (let y = FIRST_YEAR; y <= LAST_YEAR; y++) {
+    for (const c of COMMODITIES) {
+      for (const exp of REGIONS) {
+        for (const imp of REGIONS) {
+          if (exp === imp) continue;
+          let base = c.base[exp]! * Math.pow(1 + c.growth, y - FIRST_YEAR) * c.tradeShare / 4;
+          // Estrava re-exports machinery in 2012–2016: its exports exceed what it makes and buys.
+          if (c.code === "C300" && exp === "EST" && y >= 2012 && y <= 2016) base *= 6;
+          if (base === 0) continue;
+          const q = base * (0.9 + 0.2 * rnd());
+          const asym = 1 + (rnd() - 0.5) * 0.06; // small reporting differences between the two sides
+          const unit = c.unit === "piece" ? "pieces" : "t";
+          const v = (x: number) => (c.unit === "piece" ? String(Math.round(x)) : fmt(c.unit === "kt" ? x * 1000 : x));
+          // Dunmoor did not report trade in 2005–2009: mirror fill recovers it from partners.
+          if (!(exp === "DUN" && y >= 2005 && y <= 2009)) trade.push([exp, imp, c.code, "export", y, v(q), unit].join(","));
+          if (!(imp === "DUN" && y >= 2005 && y <= 2009)) trade.push([imp, exp, c.code, "import", y, v(q * asym), unit].join(","));
+        }
+      }
+    }
+    // A small flow of an unclassified code, reported by Aldmark only.
+    trade.push(["ALD", "BRV", UNMAPPED.code, "import", y, fmt(50 + 10 * rnd()), "t"].join(","));
+  }
+  const conc = [
+    "commodity,product,material,factor,share,unit_mass",
+    "C100,vehicles,steel,1,0.65,1350",
+    "C100,vehicles,aluminium,1,0.13,1350",
+    "C100,vehicles,plastics,1,0.18,1350",
+    "C100,vehicles,copper,1,0.04,1350",
+    "C200,buildings,steel,0.98,1,",
+    "C210,buildings,cement,1,1,",
+    "C300,machinery,steel,1,0.7,",
+    "C300,machinery,copper,1,0.1,",
+    "C300,machinery,aluminium,1,0.2,",
+    "C400,packaging,aluminium,0.95,1,",
+    "C410,packaging,plastics,1,1,",
+  ];
+  // Note: C100 production is given in kt of vehicles (the statistics publish mass), trade in pieces.
+  const groups = ["member,group", ...REGIONS.map((r) => `${r},WORLD`), "ALD,NORTH", "DUN,NORTH", "BRV,SOUTH", "COR,SOUTH", "EST,SOUTH"];
+  const regions = ["region,name", ...REGIONS.map((r) => `${r},${REGION_NAMES[r]}`)];
+  const commodities = ["commodity,label", ...COMMODITIES.map((c) => `${c.code},${c.label}`), `${UNMAPPED.code},${UNMAPPED.label}`];
+  writeFileSync(path.join(dir, "production.csv"), prod.join("\n") + "\n");
+  writeFileSync(path.join(dir, "trade.csv"), trade.join("\n") + "\n");
+  writeFileSync(path.join(dir, "concordance.csv"), conc.join("\n") + "\n");
+  writeFileSync(path.join(dir, "region_groups.csv"), groups.join("\n") + "\n");
+  writeFileSync(path.join(dir, "regions.csv"), regions.join("\n") + "\n");
+  writeFileSync(path.join(dir, "commodities.csv"), commodities.join("\n") + "\n");
+}
+
+if (process.argv[1] && import.meta.url === new URL(`file://${path.resolve(process.argv[1])}`).href) {
+  generateDemo(process.argv[2] ?? "data-samples/demo");
+}

@@ -1,0 +1,82 @@
+/** The DuckDB session: one embedded instance, one connection, documented settings. */
+import { DuckDBConnection, DuckDBInstance } from "@duckdb/node-api";
+
+export interface SessionOptions {
+  /** DuckDB memory limit, e.g. "6GB" (default: DuckDB's own, 80 % of RAM). */
+  memoryLimit?: string;
+  /** Worker threads for SQL (default: all cores). */
+  threads?: number;
+  /** Where DuckDB spills when the memory limit is reached. */
+  tempDirectory?: string;
+}
+
+export type Row = Record<string, unknown>;
+
+export class Session {
+  private constructor(
+    readonly instance: DuckDBInstance,
+    readonly conn: DuckDBConnection,
+  ) {}
+
+  static async open(opts: SessionOptions = {}): Promise<Session> {
+    const config: Record<string, string> = {};
+    if (opts.memoryLimit) config.memory_limit = opts.memoryLimit;
+    if (opts.threads) config.threads = String(opts.threads);
+    if (opts.tempDirectory) config.temp_directory = opts.tempDirectory;
+    const instance = await DuckDBInstance.create(":memory:", config);
+    const conn = await instance.connect();
+    // Keep file order in scans and writes: needed for row numbers and a fixed output order.
+    await conn.run("SET preserve_insertion_order = true");
+    return new Session(instance, conn);
+  }
+
+  async run(sql: string): Promise<void> {
+    await this.conn.run(sql);
+  }
+
+  /** Small results only: rows as plain JSON-compatible objects (BIGINT → number). */
+  async all(sql: string): Promise<Row[]> {
+    const reader = await this.conn.runAndReadAll(sql);
+    const rows = reader.getRowObjectsJS() as Row[];
+    return rows.map((r) => {
+      const o: Row = {};
+      for (const [k, v] of Object.entries(r)) o[k] = typeof v === "bigint" ? Number(v) : v;
+      return o;
+    });
+  }
+
+  async one(sql: string): Promise<Row> {
+    const rows = await this.all(sql);
+    if (rows.length !== 1) throw new Error(`expected one row, got ${rows.length}: ${sql}`);
+    return rows[0]!;
+  }
+
+  async scalar<T = unknown>(sql: string): Promise<T> {
+    const r = await this.one(sql);
+    return Object.values(r)[0] as T;
+  }
+
+  async tableExists(name: string): Promise<boolean> {
+    const n = await this.scalar<number>(
+      `SELECT count(*) FROM duckdb_tables() WHERE table_name = '${name.replace(/'/g, "''")}' AND temporary = false UNION ALL SELECT 0 LIMIT 1`,
+    );
+    return n > 0;
+  }
+
+  async columns(table: string): Promise<{ name: string; type: string }[]> {
+    const rows = await this.all(`DESCRIBE ${'"' + table.replace(/"/g, '""') + '"'}`);
+    return rows.map((r) => ({ name: String(r.column_name), type: String(r.column_type) }));
+  }
+
+  async version(): Promise<string> {
+    return String(await this.scalar("SELECT version()"));
+  }
+
+  close(): void {
+    try {
+      this.conn.closeSync();
+    } finally {
+      this.instance.closeSync();
+    }
+  }
+}

@@ -1,0 +1,154 @@
+/**
+ * `apparent-consumption`: production + imports − exports per keys and year (common practice,
+ * no source), with optional concordance on the way in, mirror fill for reporters that did not
+ * report, a negative-result policy, and the identity, sign and trade-asymmetry audits.
+ */
+import { z } from "zod";
+import { ColumnMap, Name } from "../spec/common.js";
+import { DataError } from "../errors.js";
+import { exactSum, ident, idents, keyMap, lit } from "../engine/sql.js";
+import { defineStep } from "./types.js";
+import { applyConcordance } from "./mapping.js";
+
+const PRODUCTION_ROLES = ["region", "commodity", "year", "quantity"] as const;
+const TRADE_ROLES = ["reporter", "partner", "commodity", "flow", "year", "quantity"] as const;
+
+export const apparentConsumptionStep = defineStep({
+  kind: "apparent-consumption",
+  summary: "production + imports − exports per keys and year, with concordance, mirror fill, negative policy and audits",
+  options: z.object({
+    production: Name.describe("production table: region, commodity, year, quantity (renamable with production_columns)"),
+    trade: Name.describe("bilateral trade table: reporter, partner, commodity, flow, year, quantity"),
+    concordance: Name.optional().describe("map commodity codes to product × material on the way in (same audits as the concordance step)"),
+    keys: z.array(Name).min(1).optional().describe("output keys (default [region, product, material] with a concordance, else [region, commodity])"),
+    mirror_fill: z.boolean().default(false).describe("for a reporter-year without any trade rows, use partners' reports of the opposite flow"),
+    negative: z.enum(["keep", "zero", "flag"]).default("keep").describe("negative consumption: keep it, set it to zero, or keep it and mark it in a `negative` column"),
+    flows: z.object({ import: z.string().default("import"), export: z.string().default("export") }).strict().optional()
+      .describe("labels of the flow column (default import, export)"),
+    production_columns: ColumnMap(PRODUCTION_ROLES).optional(),
+    trade_columns: ColumnMap(TRADE_ROLES).optional(),
+  }),
+  reads: (o) => [o.production, o.trade, ...(o.concordance ? [o.concordance] : [])],
+  async run(ctx, o) {
+    const s = ctx.session;
+    const a = ctx.pipeline.audit;
+    ctx.requireTable(o.production, "production");
+    ctx.requireTable(o.trade, "trade");
+    if (o.concordance) ctx.requireTable(o.concordance, "concordance");
+    const pc = { region: "region", commodity: "commodity", year: "year", quantity: "quantity", ...o.production_columns } as Record<string, string>;
+    const tc = { reporter: "reporter", partner: "partner", commodity: "commodity", flow: "flow", year: "year", quantity: "quantity", ...o.trade_columns } as Record<string, string>;
+    const imp = o.flows?.import ?? "import";
+    const exp = o.flows?.export ?? "export";
+    const pCols = await ctx.columnsOf(o.production);
+    const tCols = await ctx.columnsOf(o.trade);
+    for (const [tbl, map, cols, opt] of [[o.production, pc, pCols, "production_columns"], [o.trade, tc, tCols, "trade_columns"]] as const) {
+      const missing = Object.entries(map).filter(([, c]) => !cols.includes(c));
+      if (missing.length) {
+        throw new DataError(`step ${o.id}: table ${tbl} lacks column(s) ${missing.map(([role, c]) => (role === c ? c : `${c} (for ${role})`)).join(", ")}; it has ${cols.join(", ")} (map them with ${opt})`);
+      }
+    }
+    const pUnit = pCols.includes("unit") ? "unit" : lit(ctx.pipeline.base_unit);
+    const tUnit = tCols.includes("unit") ? "unit" : lit(ctx.pipeline.base_unit);
+    const id = o.id;
+    const T = (n: string) => ident(`__${id}_${n}`);
+
+    // Flow labels: anything else is bad input, named with its count.
+    const badFlows = await s.all(`SELECT CAST(${ident(tc.flow!)} AS VARCHAR) AS f, count(*) AS n FROM ${ident(o.trade)}
+      WHERE CAST(${ident(tc.flow!)} AS VARCHAR) NOT IN (${lit(imp)}, ${lit(exp)}) OR ${ident(tc.flow!)} IS NULL GROUP BY 1 ORDER BY 1 LIMIT 10`);
+    if (badFlows.length) {
+      throw new DataError(`step ${id}: trade table ${o.trade}, column ${tc.flow}: unknown flow label(s) ${badFlows.map((b) => `${JSON.stringify(b.f)} (${b.n} rows)`).join(", ")}; accepted: ${JSON.stringify(imp)}, ${JSON.stringify(exp)} (set flows: {import: …, export: …})`);
+    }
+    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("trade")} AS
+      SELECT CAST(${ident(tc.reporter!)} AS VARCHAR) AS reporter, CAST(${ident(tc.partner!)} AS VARCHAR) AS partner, ${ident(tc.commodity!)} AS commodity,
+        CASE WHEN ${ident(tc.flow!)} = ${lit(imp)} THEN 'import' ELSE 'export' END AS flow, ${ident(tc.year!)} AS year,
+        CAST(${ident(tc.quantity!)} AS DOUBLE) AS quantity, ${tUnit} AS unit, FALSE AS mirrored
+      FROM ${ident(o.trade)}`);
+    let mirroredRows = 0;
+    if (o.mirror_fill) {
+      await s.run(`INSERT INTO ${T("trade")}
+        SELECT t.partner, t.reporter, t.commodity, CASE t.flow WHEN 'import' THEN 'export' ELSE 'import' END, t.year, t.quantity, t.unit, TRUE
+        FROM ${T("trade")} t
+        WHERE NOT t.mirrored AND NOT EXISTS (SELECT 1 FROM ${T("trade")} r WHERE r.reporter = t.partner AND r.year = t.year AND NOT r.mirrored)`);
+      mirroredRows = Number(await s.scalar(`SELECT count(*) FROM ${T("trade")} WHERE mirrored`));
+      const filled = Number(await s.scalar(`SELECT count(DISTINCT (reporter, year)) FROM ${T("trade")} WHERE mirrored`));
+      await ctx.audits.note(id, "mirror-fill", "warning", "pass", `${filled} reporter-years without trade reports filled from partners' reports (${mirroredRows} mirrored rows, marked mirrored = true)`, filled, null);
+    }
+
+    // Trade asymmetry where both sides report.
+    await ctx.audits.check({
+      step: id, check: "trade-asymmetry", severity: a.asymmetry_severity,
+      items: `WITH m AS (SELECT reporter, partner, commodity, year, ${exactSum("quantity")} AS q FROM ${T("trade")} WHERE NOT mirrored AND flow = 'import' GROUP BY ALL),
+        x AS (SELECT reporter, partner, commodity, year, ${exactSum("quantity")} AS q FROM ${T("trade")} WHERE NOT mirrored AND flow = 'export' GROUP BY ALL)
+        SELECT MAP(['importer', 'exporter', 'commodity'], [m.reporter, m.partner, CAST(m.commodity AS VARCHAR)]) AS keys, m.year,
+          m.q AS observed, x.q AS expected, ${a.asymmetry_threshold} * greatest(abs(m.q), abs(x.q)) AS tolerance,
+          'imports reported by ' || m.reporter || ' from ' || m.partner || ' (' || m.q || ') differ from the exports reported by ' || m.partner || ' (' || x.q || ') by more than ' || ${lit(String(a.asymmetry_threshold * 100))} || ' %' AS message
+        FROM m JOIN x ON x.reporter = m.partner AND x.partner = m.reporter AND x.commodity = m.commodity AND x.year = m.year`,
+      failMessage: "trade asymmetry",
+    });
+
+    // One wide table of flows per region, commodity, year, unit.
+    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("flows")} AS
+      SELECT region, commodity, year, unit, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports, bool_or(mirrored) AS mirrored
+      FROM (
+        SELECT CAST(${ident(pc.region!)} AS VARCHAR) AS region, ${ident(pc.commodity!)} AS commodity, ${ident(pc.year!)} AS year, ${pUnit} AS unit,
+          CAST(${ident(pc.quantity!)} AS DOUBLE) AS production, 0.0 AS imports, 0.0 AS exports, FALSE AS mirrored FROM ${ident(o.production)}
+        UNION ALL
+        SELECT reporter, commodity, year, unit, 0.0, CASE WHEN flow = 'import' THEN quantity ELSE 0 END, CASE WHEN flow = 'export' THEN quantity ELSE 0 END, mirrored
+        FROM ${T("trade")}
+      ) GROUP BY region, commodity, year, unit`);
+
+    let base = T("flows");
+    let available = ["region", "commodity"];
+    const extra: { name: string; keys: string[] }[] = [];
+    if (o.concordance) {
+      // Mirror marks travel with the mapping: the share of mirrored mass is kept as a value column.
+      await s.run(`ALTER TABLE ${T("flows")} ADD COLUMN mirrored_mass DOUBLE; UPDATE ${T("flows")} SET mirrored_mass = CASE WHEN mirrored THEN 1.0 ELSE 0.0 END`);
+      await applyConcordance(ctx, {
+        step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports", "mirrored_mass"],
+        concordance: o.concordance, output: `__${id}_mapped`, unmapped: `${id}_unmapped`, audited: ["production", "imports", "exports"],
+      });
+      await s.run(`ALTER TABLE ${ident(`${id}_unmapped`)} DROP COLUMN mirrored_mass`);
+      base = T("mapped");
+      available = ["region", "product", "material"];
+      extra.push({ name: `${id}_unmapped`, keys: ["region", "commodity", "year"] });
+    } else {
+      const pieces = await s.all(`SELECT DISTINCT CAST(commodity AS VARCHAR) AS c FROM ${T("flows")} WHERE unit = 'piece' ORDER BY 1 LIMIT 5`);
+      if (pieces.length) {
+        throw new DataError(`step ${id}: commodity ${pieces.map((p) => p.c).join(", ")} is counted in pieces; mixing pieces with ${ctx.pipeline.base_unit} needs a conversion: give a concordance with unit_mass`);
+      }
+    }
+    const keys = o.keys ?? available;
+    const unknownKeys = keys.filter((k) => !available.includes(k));
+    if (unknownKeys.length) throw new DataError(`step ${id}: keys ${unknownKeys.join(", ")} not available; choose among ${available.join(", ")}`);
+    const mirroredExpr = o.concordance ? "max(mirrored_mass) > 0" : "bool_or(mirrored)";
+    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("raw")} AS
+      SELECT ${idents(keys)}, year, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports,
+        ${mirroredExpr} AS mirrored
+      FROM ${base} GROUP BY ALL`);
+    await s.run(`ALTER TABLE ${T("raw")} ADD COLUMN consumption DOUBLE; UPDATE ${T("raw")} SET consumption = production + imports - exports`);
+
+    // Identity, before the negative policy.
+    await ctx.audits.check({
+      step: id, check: "identity", severity: "error",
+      items: `SELECT ${keyMap(keys)} AS keys, year, consumption AS observed, production + imports - exports AS expected,
+        ${a.balance_rtol} * greatest(abs(production), abs(imports), abs(exports)) + ${a.balance_atol} AS tolerance, NULL AS message FROM ${T("raw")}`,
+      failMessage: "consumption ≠ production + imports − exports",
+    });
+    await ctx.audits.check({
+      step: id, check: "negative-consumption", severity: a.negative_severity,
+      items: `SELECT ${keyMap(keys)} AS keys, year, consumption AS observed, 0.0 AS expected, 0.0 AS tolerance,
+        'negative apparent consumption ' || consumption || ' (production ' || production || ', imports ' || imports || ', exports ' || exports || ')' ||
+        ${lit(o.negative === "zero" ? "; set to 0 (negative: zero)" : o.negative === "flag" ? "; kept, negative = true" : "; kept")} AS message
+        FROM ${T("raw")}`,
+      failWhen: "observed < 0",
+      failMessage: "negative apparent consumption",
+    });
+    const consumption = o.negative === "zero" ? "greatest(consumption, 0.0)" : "consumption";
+    const flag = o.negative === "flag" ? ", consumption < 0 AS negative" : "";
+    await s.run(`CREATE OR REPLACE TABLE ${ident(id)} AS
+      SELECT ${idents(keys)}, year, production, imports, exports, ${consumption} AS consumption, ${lit(ctx.pipeline.base_unit)} AS unit, mirrored${flag}
+      FROM ${T("raw")} ORDER BY ${idents(keys)}, year`);
+    for (const t of ["trade", "flows", "mapped", "raw"]) await s.run(`DROP TABLE IF EXISTS ${T(t)}`);
+    return [{ name: id, keys: [...keys, "year"] }, ...extra];
+  },
+});
