@@ -1,0 +1,47 @@
+/**
+ * The midpoint convention (DOMAIN.md): items enter mid-year; σ(a) = S(a + ½) is the share of a
+ * cohort still in stock at the end of the year in which it reaches age a; p(0) = F(½) and
+ * p(a) = σ(a − 1) − σ(a) is the share leaving at age a.
+ */
+import type { Lifetime } from "./distributions/types.js";
+
+export const CONVENTIONS = ["midpoint"] as const;
+export type Convention = (typeof CONVENTIONS)[number];
+
+export function sigmaAt(lt: Lifetime, a: number): number {
+  if (a < 0) return 1;
+  return lt.sigmaAt ? lt.sigmaAt(a) : lt.sf(a + 0.5);
+}
+
+/** σ(0..n − 1). */
+export function survivalVector(lt: Lifetime, n: number): Float64Array {
+  const out = new Float64Array(n);
+  for (let a = 0; a < n; a++) out[a] = sigmaAt(lt, a);
+  return out;
+}
+
+/** p(0..n − 1), each computed from whichever of F or S is accurate at that age. */
+export function leavingVector(lt: Lifetime, n: number): Float64Array {
+  const out = new Float64Array(n);
+  if (lt.sigmaAt) {
+    for (let a = 0; a < n; a++) out[a] = lt.sigmaAt(a - 1 < 0 ? -1 : a - 1) - lt.sigmaAt(a);
+    out[0] = 1 - lt.sigmaAt(0);
+    return out;
+  }
+  for (let a = 0; a < n; a++) {
+    const hi = a + 0.5;
+    const lo = a - 0.5;
+    const fhi = lt.cdf(hi);
+    if (a === 0) out[a] = fhi; // includes any mass below age 0 (normal family)
+    else if (fhi <= 0.5) out[a] = fhi - lt.cdf(lo);
+    else out[a] = lt.sf(lo) - lt.sf(hi);
+  }
+  return out;
+}
+
+/** The age, in whole years, beyond which σ is negligible (< eps), capped. */
+export function ageHorizon(lt: Lifetime, eps = 1e-13, cap = 2000): number {
+  let a = 0;
+  while (a < cap && sigmaAt(lt, a) >= eps) a++;
+  return Math.max(a, 1);
+}

@@ -1,0 +1,378 @@
+/**
+ * Inflow-driven and stock-driven cohort models over batches of series that share one
+ * lifetime assignment (a lifetime per cohort). Pure TypeScript, no I/O.
+ *
+ * Layout: every series × year quantity is a row-major Float64Array of n × T (series s, year
+ * index t = year − firstYear). Cohort c is the cohort entering in year index c.
+ */
+import type { Lifetime } from "./distributions/types.js";
+import { leavingVector, sigmaAt, survivalVector, ageHorizon } from "./discretise.js";
+import { cohortProduct, stockDrivenSolve } from "./kernels.js";
+
+/** Survival and leaving shares of one lifetime, computed once and shared. */
+export interface Curve {
+  lifetime: Lifetime;
+  sigma: Float64Array;
+  leave: Float64Array;
+}
+
+export function curveOf(lt: Lifetime, n: number): Curve {
+  return { lifetime: lt, sigma: survivalVector(lt, n), leave: leavingVector(lt, n) };
+}
+
+/** Initial stock at the end of the year before the first model year. */
+export interface InitialStock {
+  /** n × A: stock by whole-year age a = 0..A−1 per series; or null for the steady-state structure. */
+  byAge: Float64Array | null;
+  /** n: total per series (used for the steady-state structure; ignored when byAge is given). */
+  total: Float64Array;
+  A: number;
+  /** The curve for the cohort of age a (cohort year t0 − 1 − a), a = 0..A−1. */
+  curves: Curve[];
+}
+
+/** A batch of series sharing one lifetime per cohort (so one survival matrix). */
+export class CohortGroup {
+  /** σ_c(t − c) at [c·T + t], zero for c > t. */
+  readonly S: Float64Array;
+  /** p_c(t − c) at [c·T + t]. */
+  readonly P: Float64Array;
+  private SA?: Float64Array;
+  private PA?: Float64Array;
+  private St?: Float64Array;
+
+  constructor(
+    readonly T: number,
+    /** The curve of each cohort c = 0..T−1 (entries may be shared objects). */
+    readonly curves: readonly Curve[],
+  ) {
+    const S = new Float64Array(T * T);
+    const P = new Float64Array(T * T);
+    for (let c = 0; c < T; c++) {
+      const cu = curves[c]!;
+      for (let t = c; t < T; t++) {
+        S[c * T + t] = cu.sigma[t - c]!;
+        P[c * T + t] = cu.leave[t - c]!;
+      }
+    }
+    this.S = S;
+    this.P = P;
+  }
+
+  /** True when every cohort has the same exponential lifetime (first-order decay). */
+  get exponentialRate(): number | null {
+    const lt0 = this.curves[0]!.lifetime;
+    if (lt0.family !== "exponential") return null;
+    for (const c of this.curves) if (c.lifetime !== lt0 && (c.lifetime.family !== "exponential" || c.lifetime.mean !== lt0.mean)) return null;
+    return 1 / lt0.mean;
+  }
+
+  /** Age-weighted matrices for the indicators: (t − c + ½)·σ and (t − c + ½)·p. */
+  ageMatrices(): { SA: Float64Array; PA: Float64Array } {
+    if (!this.SA || !this.PA) {
+      const T = this.T;
+      this.SA = new Float64Array(T * T);
+      this.PA = new Float64Array(T * T);
+      for (let c = 0; c < T; c++)
+        for (let t = c; t < T; t++) {
+          const age = t - c + 0.5;
+          this.SA[c * T + t] = age * this.S[c * T + t]!;
+          this.PA[c * T + t] = age * this.P[c * T + t]!;
+        }
+    }
+    return { SA: this.SA, PA: this.PA };
+  }
+
+  transposedS(): Float64Array {
+    if (!this.St) {
+      const T = this.T;
+      const St = new Float64Array(T * T);
+      for (let c = 0; c < T; c++) for (let t = c; t < T; t++) St[t * T + c] = this.S[c * T + t]!;
+      this.St = St;
+    }
+    return this.St;
+  }
+}
+
+export interface ModelResult {
+  inflow: Float64Array;
+  outflow: Float64Array;
+  stock: Float64Array;
+  stockChange: Float64Array;
+  meanAgeStock?: Float64Array;
+  meanAgeOutflow?: Float64Array;
+  /** Stock-driven only: target stock and (with clamp) the unmet stock change. */
+  stockTarget?: Float64Array;
+  unmet?: Float64Array;
+  /** Items of the initial stock older than their distribution allows (left in the first year). */
+  initialTooOld?: Float64Array;
+}
+
+/** What survives of the initial stock: stock, outflow and age sums per series and year. */
+export interface InitialContribution {
+  stock0: Float64Array; // n: stock at the end of t0 − 1
+  stock: Float64Array; // n × T
+  ageSum: Float64Array; // n × T: Σ age × stock
+  outAgeSum: Float64Array; // n × T
+  tooOld: Float64Array; // n
+}
+
+export function initialContribution(init: InitialStock, n: number, T: number): InitialContribution {
+  const { A, curves } = init;
+  const stock0 = new Float64Array(n);
+  const stock = new Float64Array(n * T);
+  const ageSum = new Float64Array(n * T);
+  const outAgeSum = new Float64Array(n * T);
+  const tooOld = new Float64Array(n);
+  // Per unit of each age: survival to the end of year index t is σ(a + t + 1) / σ(a).
+  const unit = new Float64Array(A * T);
+  const live = new Uint8Array(A);
+  for (let a = 0; a < A; a++) {
+    const cu = curves[a]!;
+    const sa = sigmaAt(cu.lifetime, a);
+    if (sa > 0) {
+      live[a] = 1;
+      for (let t = 0; t < T; t++) unit[a * T + t] = sigmaAt(cu.lifetime, a + t + 1) / sa;
+    }
+  }
+  let steady: Float64Array | null = null;
+  if (!init.byAge) {
+    steady = new Float64Array(A);
+    let tot = 0;
+    for (let a = 0; a < A; a++) tot += steady[a] = sigmaAt(curves[a]!.lifetime, a);
+    for (let a = 0; a < A; a++) steady[a]! /= tot;
+  }
+  const shares = new Float64Array(A);
+  for (let s = 0; s < n; s++) {
+    if (init.byAge) for (let a = 0; a < A; a++) shares[a] = init.byAge[s * A + a]!;
+    else for (let a = 0; a < A; a++) shares[a] = steady![a]! * init.total[s]!;
+    let s0 = 0;
+    for (let a = 0; a < A; a++) {
+      const q = shares[a]!;
+      if (q === 0) continue;
+      s0 += q;
+      if (!live[a]) {
+        tooOld[s] += q;
+        outAgeSum[s * T] += q * (a + 1.5);
+        continue;
+      }
+      let prev = q;
+      for (let t = 0; t < T; t++) {
+        const v = q * unit[a * T + t]!;
+        const age = a + t + 1.5;
+        stock[s * T + t] += v;
+        ageSum[s * T + t] += v * age;
+        outAgeSum[s * T + t] += (prev - v) * age;
+        prev = v;
+      }
+    }
+    stock0[s] = s0;
+  }
+  return { stock0, stock, ageSum, outAgeSum, tooOld };
+}
+
+function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: number, T: number, stock0: Float64Array | null): { stock: Float64Array; stockChange: Float64Array } {
+  const stock = new Float64Array(n * T);
+  const stockChange = new Float64Array(n * T);
+  for (let s = 0; s < n; s++) {
+    let prev = stock0 ? stock0[s]! : 0;
+    for (let t = 0; t < T; t++) {
+      const i = s * T + t;
+      const v = prev + inflow[i]! - outflow[i]!;
+      stock[i] = v;
+      stockChange[i] = v - prev;
+      prev = v;
+    }
+  }
+  return { stock, stockChange };
+}
+
+export interface ModelOptions {
+  indicators?: boolean;
+  initial?: InitialContribution | null;
+}
+
+/**
+ * Inflow-driven: outflow(t) = Σ_c I(c)·p_c(t − c) (+ the initial stock's outflow); stock by the
+ * balance stock(t) = stock(t − 1) + I(t) − outflow(t), which equals Σ_c I(c)·σ_c(t − c).
+ */
+export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, opts: ModelOptions = {}): ModelResult {
+  const T = g.T;
+  const init = opts.initial ?? null;
+  const rate = g.exponentialRate;
+  if (rate !== null) return firstOrderDecay(inflow, n, T, rate, opts);
+  const outflow = new Float64Array(n * T);
+  cohortProduct(inflow, n, T, g.P, outflow);
+  if (init) {
+    for (let s = 0; s < n; s++) {
+      let prev = init.stock0[s]!;
+      for (let t = 0; t < T; t++) {
+        const v = init.stock[s * T + t]!;
+        outflow[s * T + t] += prev - v;
+        prev = v;
+      }
+    }
+  }
+  const { stock, stockChange } = finishFromOutflow(inflow, outflow, n, T, init?.stock0 ?? null);
+  const r: ModelResult = { inflow, outflow, stock, stockChange };
+  if (opts.indicators) addIndicators(g, r, n, init);
+  if (init) r.initialTooOld = init.tooOld;
+  return r;
+}
+
+function addIndicators(g: CohortGroup, r: ModelResult, n: number, init: InitialContribution | null): void {
+  const T = g.T;
+  const { SA, PA } = g.ageMatrices();
+  const as = new Float64Array(n * T);
+  const ao = new Float64Array(n * T);
+  cohortProduct(r.inflow, n, T, SA, as);
+  cohortProduct(r.inflow, n, T, PA, ao);
+  if (init) for (let i = 0; i < n * T; i++) {
+    as[i] += init.ageSum[i]!;
+    ao[i] += init.outAgeSum[i]!;
+  }
+  for (let i = 0; i < n * T; i++) {
+    as[i] = r.stock[i]! > 0 ? as[i]! / r.stock[i]! : NaN;
+    ao[i] = r.outflow[i]! > 0 ? ao[i]! / r.outflow[i]! : NaN;
+  }
+  r.meanAgeStock = as;
+  r.meanAgeOutflow = ao;
+}
+
+/**
+ * First-order decay (exponential lifetime, rate k = 1/mean), exact in the midpoint convention:
+ *   stock(t) = e^(−k)·stock(t − 1) + e^(−k/2)·I(t)
+ *   outflow(t) = (1 − e^(−k))·stock(t − 1) + (1 − e^(−k/2))·I(t)
+ * O(years) per series; the initial stock decays the same way whatever its ages.
+ */
+export function firstOrderDecay(inflow: Float64Array, n: number, T: number, k: number, opts: ModelOptions = {}): ModelResult {
+  const init = opts.initial ?? null;
+  const e1 = Math.exp(-k);
+  const eh = Math.exp(-k / 2);
+  const l1 = -Math.expm1(-k);
+  const lh = -Math.expm1(-k / 2);
+  const stock = new Float64Array(n * T);
+  const outflow = new Float64Array(n * T);
+  const stockChange = new Float64Array(n * T);
+  const ind = opts.indicators;
+  const mas = ind ? new Float64Array(n * T) : undefined;
+  const mao = ind ? new Float64Array(n * T) : undefined;
+  for (let s = 0; s < n; s++) {
+    let prev = init ? init.stock0[s]! : 0;
+    // Age sum of the initial stock at the end of t0 − 1 (midpoint ages), from its first-year survivors.
+    let ageSum = 0;
+    if (init && ind) {
+      const surv1 = init.stock[s * T]!;
+      ageSum = surv1 > 0 ? (init.ageSum[s * T]! / surv1 - 1) * prev : 0;
+    }
+    for (let t = 0; t < T; t++) {
+      const i = s * T + t;
+      const I = inflow[i]!;
+      const v = e1 * prev + eh * I;
+      outflow[i] = l1 * prev + lh * I;
+      stock[i] = v;
+      stockChange[i] = v - prev;
+      if (ind) {
+        const oldAge = ageSum + prev; // survivors age by one year
+        const newAge = ageSum = e1 * oldAge + eh * 0.5 * I;
+        mas![i] = v > 0 ? newAge / v : NaN;
+        const outAge = l1 * oldAge + lh * 0.5 * I;
+        mao![i] = outflow[i]! > 0 ? outAge / outflow[i]! : NaN;
+      }
+      prev = v;
+    }
+  }
+  const r: ModelResult = { inflow, outflow, stock, stockChange };
+  if (ind) {
+    r.meanAgeStock = mas;
+    r.meanAgeOutflow = mao;
+  }
+  if (init) r.initialTooOld = init.tooOld;
+  return r;
+}
+
+/**
+ * Stock-driven: I(t) = [stock(t) − Σ_{c<t} I(c)·σ_c(t − c) − initial(t)] / σ_t(0), year by year.
+ * Negative inflow is kept (and flagged by the caller) or, with clamp, set to 0 and the unmet
+ * stock change reported. Outflow follows from the balance of the achieved stock.
+ */
+export function stockDriven(g: CohortGroup, target: Float64Array, n: number, opts: ModelOptions & { clamp?: boolean } = {}): ModelResult {
+  const T = g.T;
+  const init = opts.initial ?? null;
+  for (let c = 0; c < T; c++) {
+    if (!(g.S[c * T + c]! > 0)) throw new Error(`cohort ${c}: σ(0) = 0 (everything leaves in the year of entry), so no inflow can build a stock`);
+  }
+  const inflow = new Float64Array(n * T);
+  const achieved = new Float64Array(n * T);
+  stockDrivenSolve(target, n, T, g.transposedS(), init ? init.stock : null, Boolean(opts.clamp), inflow, achieved);
+  const outflow = new Float64Array(n * T);
+  const stockChange = new Float64Array(n * T);
+  for (let s = 0; s < n; s++) {
+    let prev = init ? init.stock0[s]! : 0;
+    for (let t = 0; t < T; t++) {
+      const i = s * T + t;
+      outflow[i] = prev + inflow[i]! - achieved[i]!;
+      stockChange[i] = achieved[i]! - prev;
+      prev = achieved[i]!;
+    }
+  }
+  const r: ModelResult = { inflow, outflow, stock: achieved, stockChange, stockTarget: target };
+  if (opts.clamp) {
+    const unmet = new Float64Array(n * T);
+    for (let i = 0; i < n * T; i++) unmet[i] = target[i]! - achieved[i]!;
+    r.unmet = unmet;
+  }
+  if (opts.indicators) addIndicators(g, r, n, init);
+  if (init) r.initialTooOld = init.tooOld;
+  return r;
+}
+
+/**
+ * Material composition: material inflow I(c)·content_m(c), then the inflow-driven model, so
+ * material stock and outflow follow each cohort's own content; no cohort matrix is built.
+ * `content` is (n·M) × T: for series s and material m, row s·M + m holds content by cohort.
+ */
+export function composition(g: CohortGroup, inflow: Float64Array, n: number, content: Float64Array, M: number,
+  initialMaterial: InitialContribution | null = null): ModelResult {
+  const T = g.T;
+  const mi = new Float64Array(n * M * T);
+  for (let s = 0; s < n; s++)
+    for (let m = 0; m < M; m++) {
+      const row = (s * M + m) * T;
+      for (let t = 0; t < T; t++) mi[row + t] = inflow[s * T + t]! * content[row + t]!;
+    }
+  return inflowDriven(g, mi, n * M, { initial: initialMaterial });
+}
+
+/**
+ * Cohort-resolved stock and outflow, streamed: calls `emit` with one series at a time
+ * (cohort-major rows for t ≥ c), never holding more than one series' T × T block.
+ */
+export function* byCohort(g: CohortGroup, inflow: Float64Array, n: number): Generator<{ s: number; cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array }> {
+  const T = g.T;
+  const rows = (T * (T + 1)) / 2;
+  const cohort = new Int32Array(rows);
+  const year = new Int32Array(rows);
+  let k = 0;
+  for (let c = 0; c < T; c++) for (let t = c; t < T; t++) {
+    cohort[k] = c;
+    year[k++] = t;
+  }
+  for (let s = 0; s < n; s++) {
+    const stock = new Float64Array(rows);
+    const outflow = new Float64Array(rows);
+    const inf = new Float64Array(rows);
+    let j = 0;
+    for (let c = 0; c < T; c++) {
+      const I = inflow[s * T + c]!;
+      for (let t = c; t < T; t++) {
+        stock[j] = I * g.S[c * T + t]!;
+        outflow[j] = I * g.P[c * T + t]!;
+        inf[j++] = t === c ? I : 0;
+      }
+    }
+    yield { s, cohort, year, stock, outflow, inflow: inf };
+  }
+}
+
+export { ageHorizon };
