@@ -95,6 +95,64 @@ export function generateDemo(dir: string, seed = 20261201): void {
   const groups = ["member,group", ...REGIONS.map((r) => `${r},WORLD`), "ALD,NORTH", "DUN,NORTH", "BRV,SOUTH", "COR,SOUTH", "EST,SOUTH"];
   const regions = ["region,name", ...REGIONS.map((r) => `${r},${REGION_NAMES[r]}`)];
   const commodities = ["commodity,label", ...COMMODITIES.map((c) => `${c.code},${c.label}`), `${UNMAPPED.code},${UNMAPPED.label}`];
+  // Cohort models: lifetimes by product (and one region-specific row), content by cohort,
+  // a steady-state initial stock, and an invented population path with per-capita stock targets.
+  const lifetimes = [
+    "region,product,first_cohort,last_cohort,distribution,mean,sd,shape,scale",
+    ",vehicles,,2005,weibull,14,5,,",
+    ",vehicles,2006,,weibull,16,5,,",
+    ",buildings,,,lognormal,60,20,,",
+    "EST,buildings,,,truncated-normal,45,15,,",
+    ",machinery,,,gamma,25,8,,",
+    ",packaging,,,exponential,1.2,,,",
+  ];
+  const content = [
+    "region,product,material,first_cohort,last_cohort,content",
+    ",vehicles,steel,,2005,0.69",
+    ",vehicles,steel,2006,,0.61",
+    ",vehicles,aluminium,,2005,0.09",
+    ",vehicles,aluminium,2006,,0.16",
+    ",vehicles,plastics,,,0.18",
+    ",vehicles,copper,,,0.04",
+    ",buildings,steel,,,0.16",
+    ",buildings,cement,,,0.84",
+    ",machinery,steel,,,0.7",
+    ",machinery,copper,,,0.1",
+    ",machinery,aluminium,,,0.2",
+    ",packaging,aluminium,,,0.35",
+    ",packaging,plastics,,,0.65",
+  ];
+  const initial = ["region,product,value"];
+  const popBase: Record<string, number> = { ALD: 9.5e6, BRV: 6.1e6, COR: 7.4e6, DUN: 1.9e6, EST: 1.2e6 };
+  const popGrowth: Record<string, number> = { ALD: 0.001, BRV: 0.004, COR: 0.009, DUN: -0.004, EST: 0.002 };
+  // Invented per-capita stock levels (t per person) near each region's 2023 level.
+  const perCapita: Record<string, Record<string, number>> = {
+    ALD: { vehicles: 0.34, buildings: 19.6, machinery: 0.53, packaging: 0.037 },
+    BRV: { vehicles: 0.25, buildings: 21.1, machinery: 0.6, packaging: 0.042 },
+    COR: { vehicles: 0.083, buildings: 19.7, machinery: 0.27, packaging: 0.039 },
+    DUN: { vehicles: 0.5, buildings: 25, machinery: 0.92, packaging: 0.065 },
+    EST: { vehicles: 0.6, buildings: 24.6, machinery: 1.25, packaging: 0.086 },
+  };
+  for (const r of REGIONS) {
+    const scale = popBase[r]! / 5e6;
+    initial.push(`${r},vehicles,${fmt(1.2e6 * scale)}`, `${r},buildings,${fmt(6e7 * scale)}`, `${r},machinery,${fmt(1.5e6 * scale)}`, `${r},packaging,${fmt(2e4 * scale)}`);
+  }
+  const pop = ["region,year,population"];
+  for (const r of REGIONS) for (let y = 2024; y <= 2050; y++) pop.push(`${r},${y},${Math.round(popBase[r]! * Math.pow(1 + popGrowth[r]!, y - 2023))}`);
+  const targets = ["region,product,year,per_capita"];
+  for (const r of REGIONS) for (const [p, v] of Object.entries(perCapita[r]!)) {
+    // Targets saturate; Dunmoor's vehicle stock per person falls after 2035 (car-light policy): negative inflow to flag.
+    for (const y of [2024, 2035, 2050]) {
+      const catchUp = r === "COR" && p === "vehicles" ? 2.5 : 1;
+      const f = y === 2024 ? 1 : y === 2035 ? 1.08 * catchUp : r === "DUN" && p === "vehicles" ? 0.6 : 1.15 * catchUp;
+      targets.push(`${r},${p},${y},${fmt(v * f)}`);
+    }
+  }
+  writeFileSync(path.join(dir, "lifetimes.csv"), lifetimes.join("\n") + "\n");
+  writeFileSync(path.join(dir, "content.csv"), content.join("\n") + "\n");
+  writeFileSync(path.join(dir, "initial_stock.csv"), initial.join("\n") + "\n");
+  writeFileSync(path.join(dir, "population.csv"), pop.join("\n") + "\n");
+  writeFileSync(path.join(dir, "stock_targets.csv"), targets.join("\n") + "\n");
   writeFileSync(path.join(dir, "production.csv"), prod.join("\n") + "\n");
   writeFileSync(path.join(dir, "trade.csv"), trade.join("\n") + "\n");
   writeFileSync(path.join(dir, "concordance.csv"), conc.join("\n") + "\n");

@@ -6,12 +6,14 @@ import { concordanceStep } from "./concordance.js";
 import { apparentConsumptionStep } from "./apparent-consumption.js";
 import { aggregateStep } from "./aggregate.js";
 import { sqlStep } from "./sql.js";
+import { cohortModelStep } from "./cohort-model.js";
 
 export const STEP_KINDS: readonly StepKind[] = [
   concordanceStep,
   apparentConsumptionStep,
   aggregateStep,
   sqlStep,
+  cohortModelStep,
 ] as unknown as StepKind[];
 
 export function stepKind(kind: string): StepKind | undefined {
