@@ -52,7 +52,7 @@ export function registerRun(program: Command): void {
       if (o.json) process.stdout.write(JSON.stringify(report) + "\n");
       else process.stdout.write(printReport(report));
       if (report.status !== "ok") {
-        if (o.json) process.stderr.write(`cairn: ${report.error}\n`);
+        process.stderr.write(`cairn: ${report.error}\n`);
         process.exit(report.exit_code);
       }
     });

@@ -97,7 +97,7 @@ function readExpr(src: SourceT, files: string[], format: "csv" | "parquet", extr
 
 /** The columns of the files, before rename, as DuckDB sees them. */
 export async function fileColumns(s: Session, src: SourceT, files: string[], format: "csv" | "parquet"): Promise<string[]> {
-  const cols = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format)}`);
+  const cols = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format, format === "csv" ? ", ignore_errors = true" : "")}`);
   return cols.map((c) => String(c.column_name)).filter((c) => c !== "__file" && c !== "file_row_number");
 }
 
