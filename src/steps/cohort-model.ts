@@ -185,10 +185,15 @@ async function runCohortModel(ctx: StepContext, o: O) {
     if (!c) {
       const r = row.raw;
       const num = (x: unknown) => (x === null || x === undefined || x === "" ? null : Number(x));
-      const ltm = makeLifetime({
+      let ltm;
+      try {
+        ltm = makeLifetime({
         distribution: String(r.distribution ?? ""), mean: num(r.mean), sd: num(r.sd), shape: num(r.shape), scale: num(r.scale),
         curve: r.curve === null || r.curve === undefined || r.curve === "" ? null : String(r.curve),
-      }, `${where}: lifetimes row ${row.index + 1}`, (name) => curveTable.get(name));
+        }, `${where}: lifetimes row ${row.index + 1}`, (name) => curveTable.get(name));
+      } catch (e) {
+        throw new DataError(`step ${o.id}: ${(e as Error).message}`);
+      }
       c = curveOf(ltm, curveLen);
       rowCurves.set(row.index, c);
     }
