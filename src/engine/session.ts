@@ -12,6 +12,13 @@ export interface SessionOptions {
 
 export type Row = Record<string, unknown>;
 
+/** CAIRN_PROFILE=1 prints every statement slower than 50 ms to stderr (for tuning). */
+const PROFILE = process.env.CAIRN_PROFILE === "1";
+function profile(sql: string, t0: number): void {
+  const ms = performance.now() - t0;
+  if (ms > 50) process.stderr.write(`[sql ${ms.toFixed(0)} ms] ${sql.replace(/\s+/g, " ").slice(0, 160)}\n`);
+}
+
 export class Session {
   private constructor(
     readonly instance: DuckDBInstance,
@@ -31,12 +38,16 @@ export class Session {
   }
 
   async run(sql: string): Promise<void> {
+    const t0 = PROFILE ? performance.now() : 0;
     await this.conn.run(sql);
+    if (PROFILE) profile(sql, t0);
   }
 
   /** Small results only: rows as plain JSON-compatible objects (BIGINT → number). */
   async all(sql: string): Promise<Row[]> {
+    const t0 = PROFILE ? performance.now() : 0;
     const reader = await this.conn.runAndReadAll(sql);
+    if (PROFILE) profile(sql, t0);
     const rows = reader.getRowObjectsJS() as Row[];
     return rows.map((r) => {
       const o: Row = {};

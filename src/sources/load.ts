@@ -156,14 +156,21 @@ export async function initRejects(s: Session): Promise<void> {
     "column" VARCHAR, value VARCHAR, reason VARCHAR)`);
 }
 
-/** Typed value expression and failure condition (with its reason) per declared column. */
-function columnRules(c: Col, src: SourceT, pipeline: Pipeline): { typed: string; checks: [string, string][] } {
+const NUMERIC_TYPES = /^(DOUBLE|FLOAT|REAL|INTEGER|BIGINT|SMALLINT|TINYINT|HUGEINT|UBIGINT|UINTEGER|USMALLINT|UTINYINT|DECIMAL.*)$/;
+
+/**
+ * Typed value expression and failure conditions (with reasons) per declared column.
+ * `fileType` is the column's type in the file (VARCHAR for CSV).
+ */
+function columnRules(c: Col, src: SourceT, pipeline: Pipeline, fileType: string): { typed: string; checks: [string, string][] } {
   const raw = ident(c.name);
-  const txt = `NULLIF(trim(CAST(${raw} AS VARCHAR)), '')`;
+  const isText = fileType === "VARCHAR";
+  const numericFile = NUMERIC_TYPES.test(fileType);
+  const txt = isText ? (src.format === "parquet" || fileType === "VARCHAR" && !isCsv(src) ? `NULLIF(${raw}, '')` : `NULLIF(trim(${raw}), '')`) : `CAST(${raw} AS VARCHAR)`;
   const decimal = src.csv?.decimal === "," ? `replace(${txt}, ',', '.')` : txt;
   const checks: [string, string][] = [];
   const missing = c.key ? `missing key ${c.name}` : `missing value in ${c.name}`;
-  if (!c.nullable) checks.push([`${txt} IS NULL`, lit(missing)]);
+  if (!c.nullable) checks.push([`${isText ? txt : raw} IS NULL`, lit(missing)]);
   let typed: string;
   switch (c.type) {
     case "text":
@@ -174,22 +181,19 @@ function columnRules(c: Col, src: SourceT, pipeline: Pipeline): { typed: string;
       checks.push([`${txt} IS NOT NULL AND ${typed} IS NULL`, lit(`${c.name} is not a boolean (accepted: true, false)`)]);
       break;
     case "integer": {
-      const d = `TRY_CAST(${decimal} AS DOUBLE)`;
+      const d = numericFile ? `CAST(${raw} AS DOUBLE)` : `TRY_CAST(${decimal} AS DOUBLE)`;
       typed = `CAST(${d} AS BIGINT)`;
-      checks.push([`${txt} IS NOT NULL AND (${d} IS NULL OR NOT isfinite(${d}) OR ${d} <> round(${d}))`, lit(`${c.name} is not a whole number`)]);
+      checks.push([`${d} IS NULL AND ${txt} IS NOT NULL OR NOT isfinite(${d}) OR ${d} <> round(${d})`, lit(`${c.name} is not a whole number`)]);
       if (c.name === "year" && pipeline.years) {
-        checks.push([
-          `${d} IS NOT NULL AND isfinite(${d}) AND (${d} < ${pipeline.years.first} OR ${d} > ${pipeline.years.last})`,
-          lit(`year outside the horizon ${pipeline.years.first}..${pipeline.years.last}`),
-        ]);
+        checks.push([`${d} < ${pipeline.years.first} OR ${d} > ${pipeline.years.last}`, lit(`year outside the horizon ${pipeline.years.first}..${pipeline.years.last}`)]);
       }
       break;
     }
     case "number":
     case "quantity": {
-      typed = `TRY_CAST(${decimal} AS DOUBLE)`;
-      checks.push([`${txt} IS NOT NULL AND ${typed} IS NULL`, lit(`${c.name} is not a number${src.csv?.decimal === "," ? " (decimal comma expected)" : ""}`)]);
-      checks.push([`${typed} IS NOT NULL AND NOT isfinite(${typed})`, lit(`${c.name} is not finite (NaN or infinite)`)]);
+      typed = numericFile ? `CAST(${raw} AS DOUBLE)` : `TRY_CAST(${decimal} AS DOUBLE)`;
+      if (!numericFile) checks.push([`${txt} IS NOT NULL AND ${typed} IS NULL`, lit(`${c.name} is not a number${src.csv?.decimal === "," ? " (decimal comma expected)" : ""}`)]);
+      checks.push([`NOT isfinite(${typed})`, lit(`${c.name} is not finite (NaN or infinite)`)]);
       if (!c.allowNegative) checks.push([`${typed} < 0`, lit(`negative ${c.name} (set allow_negative: true on the column to accept it)`)]);
       break;
     }
@@ -197,11 +201,15 @@ function columnRules(c: Col, src: SourceT, pipeline: Pipeline): { typed: string;
   return { typed, checks };
 }
 
+function isCsv(src: SourceT): boolean {
+  return formatOf(src, src.path) === "csv";
+}
+
 function pct(n: number, d: number): string {
   return d === 0 ? "0 %" : `${((100 * n) / d).toFixed(3)} %`;
 }
 
-/** Loads one source into a table of its name; rejected rows into the rejects table. */
+/** Loads one source as a table (view) of its name; rejected rows into the rejects table. */
 export async function loadSource(s: Session, pipeline: Pipeline, name: string, src: SourceT, dir: string,
   log: (m: string) => void = () => {}): Promise<SourceResult> {
   const { files, format } = await sourceFiles(s, name, src, dir);
@@ -209,30 +217,34 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const hashes = await hashFiles(files);
   const cols = normaliseColumns(src.columns);
   const header = src.csv?.header ?? true;
-  const rawT = `__raw_${name}`;
   const csvRejT = `__csvrej_${name}`;
   const csvScanT = `__csvscan_${name}`;
+  const checkedT = `__checked_${name}`;
 
-  // Select list with renames (and positional names when there is no header).
-  const selectRaw = async (numbered: boolean): Promise<void> => {
+  const fromExpr = async (numbered: boolean): Promise<{ from: string; types: Map<string, string> }> => {
     let from: string;
     if (format === "csv") {
       const names = header ? "" : `, names = [${Object.keys(src.columns).map(lit).join(", ")}]`;
       from = readExpr(src, files, "csv", `, store_rejects = true, rejects_table = ${lit(csvRejT)}, rejects_scan = ${lit(csvScanT)}${names}${numbered ? ", parallel = false" : ""}`);
     } else from = readExpr(src, files, "parquet");
-    const found = await fileColumns(s, src, files, format);
-    const parts = found.map((c) => `${ident(c)} AS ${ident(src.rename?.[c] ?? c)}`);
-    const rowExpr =
-      format === "parquet" ? "file_row_number + 1" : numbered ? "row_number() OVER (PARTITION BY __file)" : "CAST(NULL AS BIGINT)";
-    await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(rawT)} AS SELECT ${parts.join(", ")}, __file, ${rowExpr} AS __row FROM ${from}`);
+    const desc = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format, format === "csv" ? ", ignore_errors = true" : "")}`);
+    const types = new Map<string, string>();
+    const parts: string[] = [];
+    for (const d of desc) {
+      const c = String(d.column_name);
+      if (c === "__file" || c === "file_row_number") continue;
+      const to = src.rename?.[c] ?? c;
+      types.set(to, format === "csv" ? "VARCHAR" : String(d.column_type));
+      parts.push(`${ident(c)} AS ${ident(to)}`);
+    }
+    const rowExpr = format === "parquet" ? "file_row_number + 1" : numbered ? "row_number() OVER (PARTITION BY __file)" : "CAST(NULL AS BIGINT)";
+    return { from: `(SELECT ${parts.join(", ")}, __file, ${rowExpr} AS __row FROM ${from})`, types };
   };
 
-  const rules = cols.map((c) => ({ c, ...columnRules(c, src, pipeline) }));
   // Units.
   let unitTyped: string | null = null;
   let unitFactor = "1";
-  const unitChecks: [string, string][] = [];
+  const unitChecks: { cond: string; reason: string; column: string }[] = [];
   const hasQty = cols.some((c) => c.type === "quantity");
   if (hasQty) {
     if (src.unit) {
@@ -245,65 +257,63 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
       const mf = sqlMassFactorCase(u, pipeline.base_unit);
       unitTyped = `CASE WHEN ${mf} IS NOT NULL THEN ${lit(pipeline.base_unit)} WHEN ${sqlIsPiece(u)} THEN ${lit(PIECE)} END`;
       unitFactor = `coalesce(${mf}, 1)`;
-      unitChecks.push([`${u} IS NOT NULL AND ${u} <> '' AND ${mf} IS NULL AND NOT ${sqlIsPiece(u)}`, lit(`unknown unit in ${src.unit_column}; accepted: ${acceptedUnits()}`)]);
+      unitChecks.push({ cond: `${u} IS NOT NULL AND ${u} <> '' AND ${mf} IS NULL AND NOT ${sqlIsPiece(u)}`, reason: lit(`unknown unit in ${src.unit_column}; accepted: ${acceptedUnits()}`), column: src.unit_column });
     }
   }
-  const allChecks: { cond: string; reason: string; column: string }[] = [];
-  for (const r of rules) for (const [cond, reason] of r.checks) allChecks.push({ cond, reason, column: r.c.name });
-  for (const [cond, reason] of unitChecks) allChecks.push({ cond, reason, column: src.unit_column! });
-  const keyCols = cols.filter((c) => c.key).map((c) => c.name);
-  const reasonExpr = allChecks.length ? `concat_ws('; ', ${allChecks.map((k) => `CASE WHEN ${k.cond} THEN ${k.reason} END`).join(", ")})` : "''";
-  const firstCol = allChecks.length ? `CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN ${lit(k.column)}`).join(" ")} END` : "NULL";
   const hasUnitCol = cols.some((c) => c.name === "unit");
-  const typedSelFinal = rules
-    .map((r) => {
-      if (hasQty && r.c.name === "unit") return `${unitTyped} AS "unit"`;
-      const t = r.c.type === "quantity" ? `(${r.typed}) * ${unitFactor}` : r.typed;
-      return `${t} AS ${ident(r.c.name)}`;
-    })
-    .concat(hasQty && !hasUnitCol ? [`${unitTyped} AS unit`] : [])
-    .join(", ");
+  const keyCols = cols.filter((c) => c.key).map((c) => c.name);
 
-  const checkedT = `__checked_${name}`;
-  const buildChecked = async (): Promise<void> => {
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(checkedT)} AS
-      SELECT ${typedSelFinal}, __file, __row, NULLIF(${reasonExpr}, '') AS __reason, ${firstCol} AS __col
-      FROM ${ident(rawT)}`);
+  const buildChecked = async (numbered: boolean): Promise<void> => {
+    const { from, types } = await fromExpr(numbered);
+    const rules = cols.map((c) => ({ c, ...columnRules(c, src, pipeline, types.get(c.name) ?? "VARCHAR") }));
+    const allChecks: { cond: string; reason: string; column: string }[] = [];
+    for (const r of rules) for (const [cond, reason] of r.checks) allChecks.push({ cond: `coalesce(${cond}, FALSE)`, reason, column: r.c.name });
+    for (const u of unitChecks) allChecks.push({ ...u, cond: `coalesce(${u.cond}, FALSE)` });
+    const reasonExpr = allChecks.length ? `NULLIF(concat_ws('; ', ${allChecks.map((k) => `CASE WHEN ${k.cond} THEN ${k.reason} END`).join(", ")}), '')` : "CAST(NULL AS VARCHAR)";
+    const firstCol = allChecks.length ? `CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN ${lit(k.column)}`).join(" ")} END` : "CAST(NULL AS VARCHAR)";
+    const firstVal = allChecks.length ? `CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN CAST(${ident(k.column)} AS VARCHAR)`).join(" ")} END` : "CAST(NULL AS VARCHAR)";
+    const typedSel = rules
+      .map((r) => {
+        if (hasQty && r.c.name === "unit") return `${unitTyped} AS "unit"`;
+        const t = r.c.type === "quantity" && unitFactor !== "1" ? `(${r.typed}) * ${unitFactor}` : r.typed;
+        return `${t} AS ${ident(r.c.name)}`;
+      })
+      .concat(hasQty && !hasUnitCol ? [`${unitTyped} AS unit`] : [])
+      .join(", ");
+    await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
+    await s.run(`CREATE OR REPLACE TABLE ${ident(checkedT)} AS
+      SELECT ${typedSel}, __file, __row, ${reasonExpr} AS __reason, ${firstCol} AS __col, ${firstVal} AS __value FROM ${from}`);
     if (keyCols.length > 0) {
-      await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(checkedT)} AS
-        SELECT * REPLACE (CASE WHEN __reason IS NULL AND __dups > 1 THEN 'duplicate key (' || ${keyCols.map((k) => `${lit(k + "=")} || CAST(${ident(k)} AS VARCHAR)`).join(` || ', ' || `)} || ') occurs ' || __dups || ' times' ELSE __reason END AS __reason,
-                           CASE WHEN __reason IS NULL AND __dups > 1 THEN ${lit(keyCols.join(","))} ELSE __col END AS __col)
-        FROM (SELECT *, count(*) FILTER (WHERE __reason IS NULL) OVER (PARTITION BY ${idents(keyCols)}) AS __dups FROM ${ident(checkedT)})`);
-      await s.run(`ALTER TABLE ${ident(checkedT)} DROP COLUMN __dups`);
+      const dupT = `__dups_${name}`;
+      await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(dupT)} AS SELECT ${idents(keyCols)}, count(*) AS n FROM ${ident(checkedT)} WHERE __reason IS NULL GROUP BY ALL HAVING count(*) > 1`);
+      if (Number(await s.scalar(`SELECT count(*) FROM ${ident(dupT)}`)) > 0) {
+        await s.run(`UPDATE ${ident(checkedT)} c SET __reason = 'duplicate key (' || ${keyCols.map((k) => `${lit(k + "=")} || CAST(c.${ident(k)} AS VARCHAR)`).join(` || ', ' || `)} || ') occurs ' || d.n || ' times',
+            __col = ${lit(keyCols.join(","))}, __value = concat_ws(',', ${keyCols.map((k) => `CAST(c.${ident(k)} AS VARCHAR)`).join(", ")})
+          FROM ${ident(dupT)} d WHERE c.__reason IS NULL AND ${keyCols.map((k) => `c.${ident(k)} = d.${ident(k)}`).join(" AND ")}`);
+      }
+      await s.run(`DROP TABLE ${ident(dupT)}`);
     }
   };
 
   log(`source ${name}: reading ${files.length} file(s)`);
   try {
-    await selectRaw(false);
+    await buildChecked(false);
   } catch (e) {
     throw new DataError(`source ${name}: cannot read ${files.length === 1 ? files[0] : src.path}: ${firstLine(e)}`);
   }
-  await buildChecked();
   let bad = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NOT NULL`));
-  const csvBad = format === "csv" ? Number(await s.scalar(`SELECT count(*) FROM ${ident(csvRejT)}`)) : 0;
   if (bad > 0 && format === "csv") {
     // Locate rejected rows: a second, ordered read gives each row its number within its file.
-    await selectRaw(true);
-    await buildChecked();
+    await buildChecked(true);
     bad = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NOT NULL`));
   }
+  const csvBad = format === "csv" ? Number(await s.scalar(`SELECT count(*) FROM ${ident(csvRejT)}`)) : 0;
   const lineOffset = format === "csv" && header ? 1 : 0;
-  // Row-level rejects: value of the first failing column.
-  const valueCase = allChecks.length
-    ? `CASE ${[...new Set(allChecks.map((k) => k.column))].map((c) => `WHEN r.__col = ${lit(c)} THEN CAST(raw.${ident(c)} AS VARCHAR)`).join(" ")} END`
-    : "NULL";
-  await s.run(`INSERT INTO ${REJECTS_TABLE}
-    SELECT ${lit(name)}, c.__file, c.__row, ${format === "csv" ? `c.__row + ${lineOffset}` : "NULL"}, c.__col,
-      ${valueCase.replace(/r\.__col/g, "c.__col").replace(/raw\./g, "raw.")}, c.__reason
-    FROM ${ident(checkedT)} c JOIN ${ident(rawT)} raw ON raw.__file = c.__file AND raw.__row IS NOT DISTINCT FROM c.__row AND c.__reason IS NOT NULL
-    ${keyCols.length ? "" : ""}
-    ORDER BY c.__file, c.__row`);
+  if (bad > 0) {
+    await s.run(`INSERT INTO ${REJECTS_TABLE}
+      SELECT ${lit(name)}, __file, __row, ${format === "csv" ? `__row + ${lineOffset}` : "NULL"}, __col, __value, __reason
+      FROM ${ident(checkedT)} WHERE __reason IS NOT NULL ORDER BY __file, __row`);
+  }
   // CSV structural errors (too many / missing columns, bad quoting), found by DuckDB's reader.
   if (csvBad > 0) {
     await s.run(`INSERT INTO ${REJECTS_TABLE}
@@ -314,26 +324,25 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
       ORDER BY sc.file_path, e.line`);
   }
   const rejected = Number(await s.scalar(`SELECT count(*) FROM ${REJECTS_TABLE} WHERE source = ${lit(name)}`));
-  const okRows = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NULL`));
-  const rowsRead = okRows + rejected;
-
-  // The table, in a fixed order (file, row) so that later steps see the same input every time.
-  const outCols = [...cols.map((c) => c.name), ...(hasQty && !hasUnitCol ? ["unit"] : [])];
-  const filter = src.filter ? `AND (${src.filter})` : "";
-  try {
-    await s.run(`CREATE OR REPLACE TABLE ${ident(name)} AS SELECT ${idents(outCols)} FROM ${ident(checkedT)} WHERE __reason IS NULL ${filter}`);
-  } catch (e) {
-    throw new PipelineError(`sources.${name}.filter: ${JSON.stringify(src.filter)} is not a valid condition: ${firstLine(e)}`);
-  }
-  const loaded = Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`));
   const perFile = new Map<string, number>(
-    (await s.all(`SELECT __file AS f, count(*) AS n FROM ${ident(rawT)} GROUP BY 1`)).map((r) => [String(r.f), Number(r.n)]),
+    (await s.all(`SELECT __file AS f, count(*) AS n FROM ${ident(checkedT)} GROUP BY 1`)).map((r) => [String(r.f), Number(r.n)]),
   );
   const csvPerFile = format === "csv"
     ? new Map<string, number>((await s.all(`SELECT sc.file_path AS f, count(DISTINCT e.line) AS n FROM ${ident(csvRejT)} e JOIN ${ident(csvScanT)} sc USING (scan_id, file_id) GROUP BY 1`)).map((r) => [String(r.f), Number(r.n)]))
     : new Map<string, number>();
-  await s.run(`DROP TABLE IF EXISTS ${ident(rawT)}; DROP TABLE IF EXISTS ${ident(checkedT)}; DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
+  const okRows = [...perFile.values()].reduce((a, b) => a + b, 0) - bad;
+  const rowsRead = okRows + rejected;
 
+  // The table: a view over the checked rows (no copy), in file order.
+  const outCols = [...cols.map((c) => c.name), ...(hasQty && !hasUnitCol ? ["unit"] : [])];
+  const filter = src.filter ? `AND (${src.filter})` : "";
+  try {
+    await s.run(`CREATE OR REPLACE VIEW ${ident(name)} AS SELECT ${idents(outCols)} FROM ${ident(checkedT)} WHERE __reason IS NULL ${filter}`);
+  } catch (e) {
+    throw new PipelineError(`sources.${name}.filter: ${JSON.stringify(src.filter)} is not a valid condition: ${firstLine(e)}`);
+  }
+  const loaded = src.filter ? Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`)) : okRows;
+  await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
   const limits = { ...(pipeline.rejects ?? {}), ...(src.rejects ?? {}) };
   const maxRows = limits.max_rows ?? (limits.max_share === undefined ? 0 : Infinity);
   const maxShare = limits.max_share ?? 1;

@@ -86,46 +86,35 @@ export const apparentConsumptionStep = defineStep({
       failMessage: "trade asymmetry",
     });
 
-    // One wide table of flows per region, commodity, year, unit.
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("flows")} AS
-      SELECT region, commodity, year, unit, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports, bool_or(mirrored) AS mirrored
-      FROM (
+    // One long view of flows: production rows and trade rows (reporter as region), never copied.
+    await s.run(`CREATE OR REPLACE VIEW ${T("flows")} AS
         SELECT CAST(${ident(pc.region!)} AS VARCHAR) AS region, ${ident(pc.commodity!)} AS commodity, ${ident(pc.year!)} AS year, ${pUnit} AS unit,
           CAST(${ident(pc.quantity!)} AS DOUBLE) AS production, 0.0 AS imports, 0.0 AS exports, FALSE AS mirrored FROM ${ident(o.production)}
         UNION ALL
-        SELECT reporter, commodity, year, unit, 0.0, CASE WHEN flow = 'import' THEN quantity ELSE 0 END, CASE WHEN flow = 'export' THEN quantity ELSE 0 END, mirrored
-        FROM ${T("trade")}
-      ) GROUP BY region, commodity, year, unit`);
-
-    let base = T("flows");
-    let available = ["region", "commodity"];
+        SELECT reporter, commodity, year, unit, 0.0, CASE WHEN flow = 'import' THEN quantity ELSE 0.0 END, CASE WHEN flow = 'export' THEN quantity ELSE 0.0 END, mirrored
+        FROM ${T("trade")}`);
+    const available = o.concordance ? ["region", "product", "material"] : ["region", "commodity"];
+    const keys = o.keys ?? available;
+    const unknownKeys = keys.filter((k) => !available.includes(k));
+    if (unknownKeys.length) throw new DataError(`step ${id}: keys ${unknownKeys.join(", ")} not available; choose among ${available.join(", ")}`);
     const extra: { name: string; keys: string[] }[] = [];
     if (o.concordance) {
-      // Mirror marks travel with the mapping: the share of mirrored mass is kept as a value column.
-      await s.run(`ALTER TABLE ${T("flows")} ADD COLUMN mirrored_mass DOUBLE; UPDATE ${T("flows")} SET mirrored_mass = CASE WHEN mirrored THEN 1.0 ELSE 0.0 END`);
       await applyConcordance(ctx, {
-        step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports", "mirrored_mass"],
-        concordance: o.concordance, output: `__${id}_mapped`, unmapped: `${id}_unmapped`, audited: ["production", "imports", "exports"],
+        step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports"], flags: ["mirrored"],
+        concordance: o.concordance, outputKeys: keys, output: `__${id}_raw`, unmapped: `${id}_unmapped`,
       });
-      await s.run(`ALTER TABLE ${ident(`${id}_unmapped`)} DROP COLUMN mirrored_mass`);
-      base = T("mapped");
-      available = ["region", "product", "material"];
       extra.push({ name: `${id}_unmapped`, keys: ["region", "commodity", "year"] });
     } else {
       const pieces = await s.all(`SELECT DISTINCT CAST(commodity AS VARCHAR) AS c FROM ${T("flows")} WHERE unit = 'piece' ORDER BY 1 LIMIT 5`);
       if (pieces.length) {
         throw new DataError(`step ${id}: commodity ${pieces.map((p) => p.c).join(", ")} is counted in pieces; mixing pieces with ${ctx.pipeline.base_unit} needs a conversion: give a concordance with unit_mass`);
       }
+      await s.run(`CREATE OR REPLACE TABLE ${T("raw")} AS
+        SELECT ${idents(keys)}, year, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports,
+          ${lit(ctx.pipeline.base_unit)} AS unit, bool_or(mirrored) AS mirrored
+        FROM ${T("flows")} GROUP BY ALL`);
     }
-    const keys = o.keys ?? available;
-    const unknownKeys = keys.filter((k) => !available.includes(k));
-    if (unknownKeys.length) throw new DataError(`step ${id}: keys ${unknownKeys.join(", ")} not available; choose among ${available.join(", ")}`);
-    const mirroredExpr = o.concordance ? "max(mirrored_mass) > 0" : "bool_or(mirrored)";
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("raw")} AS
-      SELECT ${idents(keys)}, year, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports,
-        ${mirroredExpr} AS mirrored
-      FROM ${base} GROUP BY ALL`);
-    await s.run(`ALTER TABLE ${T("raw")} ADD COLUMN consumption DOUBLE; UPDATE ${T("raw")} SET consumption = production + imports - exports`);
+    await s.run(`ALTER TABLE ${T("raw")} ADD COLUMN consumption DOUBLE DEFAULT 0; UPDATE ${T("raw")} SET consumption = production + imports - exports`);
 
     // Identity, before the negative policy.
     await ctx.audits.check({
@@ -148,7 +137,7 @@ export const apparentConsumptionStep = defineStep({
     await s.run(`CREATE OR REPLACE TABLE ${ident(id)} AS
       SELECT ${idents(keys)}, year, production, imports, exports, ${consumption} AS consumption, ${lit(ctx.pipeline.base_unit)} AS unit, mirrored${flag}
       FROM ${T("raw")} ORDER BY ${idents(keys)}, year`);
-    for (const t of ["trade", "flows", "mapped", "raw"]) await s.run(`DROP TABLE IF EXISTS ${T(t)}`);
+    await s.run(`DROP VIEW ${T("flows")}; DROP TABLE ${T("trade")}; DROP TABLE ${T("raw")}`);
     return [{ name: id, keys: [...keys, "year"] }, ...extra];
   },
 });
