@@ -1,0 +1,202 @@
+/** Benchmark stages. Each runs in its own process so that its peak RSS is its own. */
+import { existsSync, mkdirSync, readFileSync, rmSync, writeFileSync } from "node:fs";
+import path from "node:path";
+import { generateSynthetic, synthPipeline } from "../data/synth.js";
+import { loadPipeline } from "../spec/load.js";
+import { runPipeline } from "../run/runner.js";
+import { Session } from "../engine/session.js";
+import { lit } from "../engine/sql.js";
+import { readColumns, writeColumns } from "../engine/handoff.js";
+import { CohortGroup, composition, curveOf, inflowDriven, makeLifetime, stockDriven } from "../cohort/index.js";
+import { mulberry32 } from "../data/prng.js";
+
+export const SIZES = { S: 1e6, M: 1e7, L: 1e8 } as const;
+export type Size = keyof typeof SIZES;
+
+export interface StageResult {
+  stage: string;
+  [k: string]: number | string | number[] | Record<string, number>[];
+}
+
+function median(xs: number[]): number {
+  const s = [...xs].sort((a, b) => a - b);
+  return s[Math.floor(s.length / 2)]!;
+}
+
+async function timed(runs: number, f: () => Promise<void> | void, progress?: (i: number, t: number) => void): Promise<number[]> {
+  const out: number[] = [];
+  for (let i = 0; i < runs; i++) {
+    const t0 = performance.now();
+    await f();
+    out.push((performance.now() - t0) / 1000);
+    progress?.(i + 1, out[out.length - 1]!);
+  }
+  return out;
+}
+
+const say = (m: string) => process.stderr.write(`  ${m}\n`);
+
+export async function ensureSynthetic(cacheRoot: string, rows: number, seed = 1): Promise<string> {
+  const dir = path.join(cacheRoot, `seed${seed}-rows${rows}`);
+  if (!existsSync(path.join(dir, "synth.json"))) {
+    say(`generating synthetic set: ${rows} trade rows (seed ${seed}) in ${dir}`);
+    rmSync(dir, { recursive: true, force: true });
+    await generateSynthetic({ tradeRows: rows, out: dir, seed });
+    writeFileSync(path.join(dir, "pipeline.yaml"), synthPipeline(dir));
+  }
+  return dir;
+}
+
+/** The same work as the pipeline, hand-written: typed and validated reads, concordance, consumption, Parquet. */
+async function rawTableStage(dir: string, out: string, memoryLimit?: string): Promise<void> {
+  const s = await Session.open({ memoryLimit });
+  const p = (f: string) => lit(path.join(dir, f));
+  await s.run(`CREATE TABLE prod AS SELECT region, commodity, CAST(year AS BIGINT) AS year, CAST(quantity AS DOUBLE) AS quantity,
+      (region IS NULL OR commodity IS NULL OR year IS NULL OR quantity IS NULL OR NOT isfinite(quantity) OR quantity < 0) AS bad
+    FROM read_parquet(${p("production.parquet")})`);
+  await s.run(`CREATE TABLE trade AS SELECT reporter, partner, commodity, flow, CAST(year AS BIGINT) AS year, CAST(quantity AS DOUBLE) AS quantity,
+      (reporter IS NULL OR partner IS NULL OR commodity IS NULL OR flow IS NULL OR year IS NULL OR quantity IS NULL OR NOT isfinite(quantity) OR quantity < 0) AS bad
+    FROM read_parquet(${p("trade.parquet")})`);
+  const d1 = await s.scalar(`SELECT count(*) FROM (SELECT region, commodity, year FROM prod WHERE NOT bad GROUP BY ALL HAVING count(*) > 1)`);
+  const d2 = await s.scalar(`SELECT count(*) FROM (SELECT reporter, partner, commodity, flow, year FROM trade WHERE NOT bad GROUP BY ALL HAVING count(*) > 1)`);
+  const bad = await s.scalar(`SELECT (SELECT count(*) FROM prod WHERE bad) + (SELECT count(*) FROM trade WHERE bad)`);
+  if (Number(d1) + Number(d2) + Number(bad) !== 0) throw new Error("synthetic data should be clean");
+  await s.run(`CREATE TABLE conc AS SELECT * FROM read_parquet(${p("concordance.parquet")})`);
+  await s.run(`COPY (
+    WITH flows AS (
+      SELECT region, commodity, year, quantity AS production, 0.0 AS imports, 0.0 AS exports FROM prod
+      UNION ALL SELECT reporter, commodity, year, 0.0, CASE WHEN flow = 'import' THEN quantity ELSE 0.0 END, CASE WHEN flow = 'export' THEN quantity ELSE 0.0 END FROM trade)
+    SELECT region, material, year, sum(production * factor * share) AS production, sum(imports * factor * share) AS imports, sum(exports * factor * share) AS exports,
+      sum((production + imports - exports) * factor * share) AS consumption, 't' AS unit
+    FROM flows JOIN conc USING (commodity) GROUP BY ALL ORDER BY ALL
+  ) TO ${lit(out)} (FORMAT parquet, COMPRESSION zstd)`);
+  s.close();
+}
+
+export async function tableStage(cacheRoot: string, size: Size, runs: number, memoryLimit?: string): Promise<StageResult> {
+  const rows = SIZES[size];
+  const dir = await ensureSynthetic(cacheRoot, rows);
+  const meta = JSON.parse(readFileSync(path.join(dir, "synth.json"), "utf8"));
+  const runDir = path.join(cacheRoot, "runs");
+  mkdirSync(runDir, { recursive: true });
+  let audit = { errors: -1, warnings: -1 };
+  const ours = await timed(runs, async () => {
+    const r = await runPipeline(loadPipeline(path.join(dir, "pipeline.yaml")), { out: path.join(runDir, `table-${size}`), replace: true, memoryLimit });
+    if (r.status !== "ok") throw new Error(`bench pipeline failed: ${r.error}`);
+    audit = { errors: r.audit!.errors, warnings: r.audit!.warnings };
+  }, (i, t) => say(`table stage (cairn) run ${i}/${runs}: ${t.toFixed(2)} s`));
+  const raw = await timed(runs, () => rawTableStage(dir, path.join(runDir, `raw-${size}.parquet`), memoryLimit), (i, t) => say(`table stage (hand-written SQL) run ${i}/${runs}: ${t.toFixed(2)} s`));
+  const ms = median(ours);
+  const mr = median(raw);
+  return {
+    stage: "table", table_rows: rows, production_rows: meta.productionRows, table_stage_s: ms, table_raw_duckdb_s: mr, table_stage_ratio: ms / mr,
+    table_rows_per_s: (rows + meta.productionRows) / ms, audit_errors: audit.errors, audit_warnings: audit.warnings, runs_s: ours,
+  };
+}
+
+/** The cohort workload: S series × Y years, G lifetime groups (normal, means 20..50, sd 30 %). */
+export function cohortWorkload(series: number, years: number, groups: number, seed = 7) {
+  const rnd = mulberry32(seed);
+  const inflow = new Float64Array(series * years);
+  for (let i = 0; i < inflow.length; i++) inflow[i] = 1 + 99 * rnd();
+  const per = Math.ceil(series / groups);
+  const gs: { group: CohortGroup; from: number; n: number }[] = [];
+  for (let g = 0; g < groups; g++) {
+    const mean = 20 + (30 * g) / Math.max(groups - 1, 1);
+    const lt = makeLifetime({ distribution: "normal", mean, sd: 0.3 * mean }, `group ${g}`);
+    const c = curveOf(lt, years + 1);
+    const from = g * per;
+    const n = Math.max(0, Math.min(per, series - from));
+    if (n > 0) gs.push({ group: new CohortGroup(years, Array(years).fill(c)), from, n });
+  }
+  return { inflow, groups: gs };
+}
+
+export async function cohortStage(series: number, years: number, groups: number, runs: number): Promise<StageResult> {
+  const w = cohortWorkload(series, years, groups);
+  const cells = series * years * (years + 1) / 2;
+  const stocks = new Float64Array(series * years);
+  const inflowT = await timed(runs, () => {
+    for (const g of w.groups) {
+      const r = inflowDriven(g.group, w.inflow.subarray(g.from * years, (g.from + g.n) * years), g.n);
+      stocks.set(r.stock, g.from * years);
+    }
+  }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
+  let maxErr = 0;
+  const stockT = await timed(runs, () => {
+    for (const g of w.groups) {
+      const r = stockDriven(g.group, stocks.subarray(g.from * years, (g.from + g.n) * years), g.n);
+      for (let i = 0; i < r.inflow.length; i += 997) maxErr = Math.max(maxErr, Math.abs(r.inflow[i]! - w.inflow[g.from * years + i]!) / w.inflow[g.from * years + i]!);
+    }
+  }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
+  const M = 3;
+  const compT = await timed(runs, () => {
+    for (const g of w.groups) {
+      const content = new Float64Array(g.n * M * years);
+      for (let s = 0; s < g.n; s++) for (let m = 0; m < M; m++) for (let c = 0; c < years; c++) content[(s * M + m) * years + c] = (m + 1) * 0.1 + (c < years / 2 ? 0 : 0.05);
+      composition(g.group, w.inflow.subarray(g.from * years, (g.from + g.n) * years), g.n, content, M);
+    }
+  }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`));
+  return {
+    stage: "cohort", cohort_series: series, cohort_years: years, cohort_groups: groups, cells_per_run: cells,
+    inflow_driven_s: median(inflowT), stock_driven_s: median(stockT), composition_s: median(compT),
+    inflow_driven_cells_per_s: cells / median(inflowT), stock_driven_cells_per_s: cells / median(stockT),
+    composition_cells_per_s: cells / median(compT), round_trip_max_rel_error: maxErr,
+  };
+}
+
+export async function handoffStage(values: number, runs: number): Promise<StageResult> {
+  const s = await Session.open();
+  await s.run(`CREATE TABLE src AS SELECT CAST(i AS DOUBLE) * 0.5 AS v FROM range(${values}) t(i)`);
+  let check = 0;
+  const readT = await timed(runs, async () => {
+    const r = await readColumns(s, "SELECT v FROM src", ["f64"], values);
+    check = (r.columns[0] as Float64Array)[values - 1]!;
+  }, (i, t) => say(`hand-off read run ${i}/${runs}: ${t.toFixed(2)} s`));
+  if (check !== (values - 1) * 0.5) throw new Error("hand-off read mismatch");
+  const a = new Int32Array(values).map((_, i) => i % 100000);
+  const b = new Int32Array(values).map((_, i) => i % 200);
+  const v = new Float64Array(values).map((_, i) => i * 0.25);
+  const writeT = await timed(runs, () => writeColumns(s, "dst", [{ name: "a", kind: "i32", data: a }, { name: "b", kind: "i32", data: b }, { name: "v", kind: "f64", data: v }], values),
+    (i, t) => say(`hand-off write run ${i}/${runs}: ${t.toFixed(2)} s`));
+  const n = Number(await s.scalar("SELECT count(*) FROM dst"));
+  if (n !== values) throw new Error("hand-off write mismatch");
+  s.close();
+  return { stage: "handoff", handoff_values: values, handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
+}
+
+/** Cohort-resolved output through the pipeline step: inflow for S series × Y years, by_cohort: true. */
+export async function byCohortStage(cacheRoot: string, series: number, years: number, memoryLimit: string): Promise<StageResult> {
+  const dir = path.join(cacheRoot, `bycohort-${series}x${years}`);
+  mkdirSync(dir, { recursive: true });
+  const s = await Session.open();
+  await s.run(`COPY (SELECT 'S' || lpad(CAST(i // ${years} AS VARCHAR), 6, '0') AS series, CAST(2000 - ${years} + 1 + i % ${years} AS INTEGER) AS year,
+      1 + (hash(i, 3) % 1000) / 10.0 AS value FROM range(${series * years}) t(i)) TO ${lit(path.join(dir, "inflow.parquet"))} (FORMAT parquet)`);
+  s.close();
+  writeFileSync(path.join(dir, "lifetimes.csv"), "distribution,mean,sd\nnormal,30,9\n");
+  writeFileSync(path.join(dir, "p.yaml"), `name: bycohort
+sources:
+  inflow:
+    path: inflow.parquet
+    unit: t
+    columns: { series: { type: text, key: true }, year: { type: integer, key: true }, value: quantity }
+  lifetimes:
+    path: lifetimes.csv
+    columns: { distribution: text, mean: number, sd: number }
+steps:
+  - id: m
+    kind: cohort-model
+    mode: inflow-driven
+    input: inflow
+    keys: [series]
+    lifetimes: lifetimes
+    by_cohort: true
+    indicators: false
+`);
+  const t0 = performance.now();
+  const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "run"), replace: true, memoryLimit });
+  const t = (performance.now() - t0) / 1000;
+  if (r.status !== "ok") throw new Error(`by-cohort run failed: ${r.error}`);
+  const out = r.outputs.find((o) => o.table === "m_by_cohort")!;
+  return { stage: "by_cohort", by_cohort_series: series, by_cohort_years: years, by_cohort_rows: out.rows, by_cohort_s: t, by_cohort_rows_per_s: out.rows / t, by_cohort_memory_limit: memoryLimit };
+}
