@@ -7,7 +7,8 @@ import { runPipeline } from "../run/runner.js";
 import { Session } from "../engine/session.js";
 import { lit } from "../engine/sql.js";
 import { readColumns, writeColumns } from "../engine/handoff.js";
-import { CohortGroup, composition, curveOf, inflowDriven, makeLifetime, stockDriven } from "../cohort/index.js";
+import { CohortGroup, curveOf, makeLifetime } from "../cohort/index.js";
+import { CohortPool, runTasks, taskFor } from "../cohort/pool.js";
 import { mulberry32 } from "../data/prng.js";
 
 export const SIZES = { S: 1e6, M: 1e7, L: 1e8 } as const;
@@ -116,27 +117,30 @@ export async function cohortStage(series: number, years: number, groups: number,
   const w = cohortWorkload(series, years, groups);
   const cells = series * years * (years + 1) / 2;
   const stocks = new Float64Array(series * years);
-  const inflowT = await timed(runs, () => {
-    for (const g of w.groups) {
-      const r = inflowDriven(g.group, w.inflow.subarray(g.from * years, (g.from + g.n) * years), g.n);
-      stocks.set(r.stock, g.from * years);
-    }
-  }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
+  const pool = CohortPool.shared();
+  const slices = w.groups.map((g) => w.inflow.subarray(g.from * years, (g.from + g.n) * years));
+  const inflowT = await timed(runs, async () => {
+    const rs = await runTasks(w.groups.map((g, i) => taskFor("inflow", g.group, slices[i]!, g.n)), pool);
+    rs.forEach((r, i) => stocks.set(r.stock, w.groups[i]!.from * years));
+  }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`));
   let maxErr = 0;
-  const stockT = await timed(runs, () => {
-    for (const g of w.groups) {
-      const r = stockDriven(g.group, stocks.subarray(g.from * years, (g.from + g.n) * years), g.n);
+  const stockT = await timed(runs, async () => {
+    const rs = await runTasks(w.groups.map((g) => taskFor("stock", g.group, stocks.subarray(g.from * years, (g.from + g.n) * years), g.n)), pool);
+    rs.forEach((r, gi) => {
+      const g = w.groups[gi]!;
       for (let i = 0; i < r.inflow.length; i += 997) maxErr = Math.max(maxErr, Math.abs(r.inflow[i]! - w.inflow[g.from * years + i]!) / w.inflow[g.from * years + i]!);
-    }
+    });
   }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
   const M = 3;
-  const compT = await timed(runs, () => {
-    for (const g of w.groups) {
-      const content = new Float64Array(g.n * M * years);
-      for (let s = 0; s < g.n; s++) for (let m = 0; m < M; m++) for (let c = 0; c < years; c++) content[(s * M + m) * years + c] = (m + 1) * 0.1 + (c < years / 2 ? 0 : 0.05);
-      composition(g.group, w.inflow.subarray(g.from * years, (g.from + g.n) * years), g.n, content, M);
-    }
+  const contents = w.groups.map((g) => {
+    const content = new Float64Array(g.n * M * years);
+    for (let s = 0; s < g.n; s++) for (let m = 0; m < M; m++) for (let c = 0; c < years; c++) content[(s * M + m) * years + c] = (m + 1) * 0.1 + (c < years / 2 ? 0 : 0.05);
+    return content;
+  });
+  const compT = await timed(runs, async () => {
+    await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
   }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`));
+  await CohortPool.closeShared();
   return {
     stage: "cohort", cohort_series: series, cohort_years: years, cohort_groups: groups, cells_per_run: cells,
     inflow_driven_s: median(inflowT), stock_driven_s: median(stockT), composition_s: median(compT),

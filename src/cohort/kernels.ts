@@ -1,3 +1,5 @@
+import { wasmProduct, wasmSolve } from "./wasm/index.js";
+
 /**
  * Batched numeric kernels over many series at once (row-major series × years Float64Arrays).
  * A cell is one series × year × cohort term.
@@ -14,6 +16,18 @@ export function pad4(n: number): number {
  * `inp` and `out` are n × T row-major.
  */
 export function cohortProduct(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {
+  if (useWasm) return wasmProduct(inp, n, T, M, out);
+  cohortProductTS(inp, n, T, M, out);
+}
+
+/** Which kernels run: WebAssembly SIMD (default) or plain TypeScript (CAIRN_KERNELS=ts, or for comparison in tests). */
+let useWasm = process.env.CAIRN_KERNELS !== "ts";
+export function setKernels(kind: "wasm" | "ts"): void {
+  useWasm = kind === "wasm";
+}
+
+/** The plain TypeScript kernel, 4 × 4 register blocking. */
+export function cohortProductTS(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {
   const Tp = pad4(T);
   // Padded copies make every block full; cost O(n·T), negligible beside O(n·T²).
   const Mp = T === Tp ? M : padMatrix(M, T, Tp);
@@ -68,6 +82,12 @@ function padRows(A: Float64Array, n: number, T: number, np: number, Tp: number):
  * With clamp, a negative I(t) is set to 0. Returns the achieved stock in `achieved`.
  */
 export function stockDrivenSolve(Z: Float64Array, n: number, T: number, St: Float64Array, init: Float64Array | null,
+  clamp: boolean, inflow: Float64Array, achieved: Float64Array): void {
+  if (useWasm) return wasmSolve(Z, n, T, St, init, clamp, inflow, achieved);
+  stockDrivenSolveTS(Z, n, T, St, init, clamp, inflow, achieved);
+}
+
+export function stockDrivenSolveTS(Z: Float64Array, n: number, T: number, St: Float64Array, init: Float64Array | null,
   clamp: boolean, inflow: Float64Array, achieved: Float64Array): void {
   for (let s0 = 0; s0 < n; s0 += 4) {
     const k = Math.min(4, n - s0);

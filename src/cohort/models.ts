@@ -41,6 +41,15 @@ export class CohortGroup {
   private PA?: Float64Array;
   private St?: Float64Array;
 
+  private rate: number | null | undefined;
+
+  /** A group from its matrices (as sent to a worker thread). */
+  static fromMatrices(T: number, S: Float64Array, P: Float64Array, rate: number | null): CohortGroup {
+    const g = Object.create(CohortGroup.prototype) as CohortGroup;
+    Object.assign(g, { T, curves: [], S, P, rate });
+    return g;
+  }
+
   constructor(
     readonly T: number,
     /** The curve of each cohort c = 0..T−1 (entries may be shared objects). */
@@ -61,6 +70,7 @@ export class CohortGroup {
 
   /** True when every cohort has the same exponential lifetime (first-order decay). */
   get exponentialRate(): number | null {
+    if (this.rate !== undefined) return this.rate;
     const lt0 = this.curves[0]!.lifetime;
     if (lt0.family !== "exponential") return null;
     for (const c of this.curves) if (c.lifetime !== lt0 && (c.lifetime.family !== "exponential" || c.lifetime.mean !== lt0.mean)) return null;

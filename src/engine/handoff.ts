@@ -1,62 +1,65 @@
 /**
  * Columnar hand-off between DuckDB and the numeric kernels: no per-row JavaScript objects.
- * Reading views each chunk's vector data as a typed array and copies it with `.set`; writing
- * fills data chunks by raw copies and appends them.
+ * Reading views each result chunk's vector data as a typed array and copies it with `.set`;
+ * writing copies typed-array ranges straight into one reused data chunk and appends it.
+ * Both go through the low-level bindings under @duckdb/node-api (the wrapper objects it
+ * builds per chunk cost more than the copy itself).
  */
 import { DOUBLE, DuckDBDataChunk, INTEGER, type DuckDBType } from "@duckdb/node-api";
+import duckdb from "@duckdb/node-bindings";
 import type { Session } from "./session.js";
 import { ident } from "./sql.js";
 
 export type ColumnKind = "f64" | "i32";
+const BYTES: Record<ColumnKind, number> = { f64: 8, i32: 4 };
 
-interface RawVector {
-  items?: Float64Array | Int32Array;
-  validity?: { data: BigUint64Array | null; itemValid(i: number): boolean };
-}
-
-function rawItems(v: unknown, kind: ColumnKind, col: string): Float64Array | Int32Array {
-  const items = (v as RawVector).items;
-  const ok = kind === "f64" ? items instanceof Float64Array : items instanceof Int32Array;
-  if (!ok) throw new Error(`hand-off: column ${col} is not ${kind === "f64" ? "DOUBLE" : "INTEGER"} (cast it in the query)`);
-  return items!;
-}
-
-function hasNulls(v: unknown, n: number): boolean {
-  const val = (v as RawVector).validity;
-  if (!val || !val.data) return false;
-  for (let i = 0; i < n; i++) if (!val.itemValid(i)) return true;
-  return false;
+function allValid(vec: duckdb.Vector, n: number): boolean {
+  const words = Math.ceil(n / 64);
+  const bytes = duckdb.vector_get_validity(vec, words * 8);
+  if (!bytes) return true;
+  const w = new BigUint64Array(bytes.buffer, bytes.byteOffset, words);
+  const full = (1n << 64n) - 1n;
+  for (let i = 0; i < words - 1; i++) if (w[i] !== full) return false;
+  const rest = n - (words - 1) * 64;
+  const mask = rest === 64 ? full : (1n << BigInt(rest)) - 1n;
+  return (w[words - 1]! & mask) === mask;
 }
 
 /**
- * Runs `sql` and returns its columns as typed arrays. `expectedRows` sizes the buffers
- * (they grow if the result is larger). NULLs are refused: filter or coalesce them first.
+ * Runs `sql` and returns its columns as typed arrays (DOUBLE → Float64Array, INTEGER →
+ * Int32Array, in that order of `kinds`). NULLs are refused: filter or coalesce them first.
  */
 export async function readColumns(s: Session, sql: string, kinds: readonly ColumnKind[], expectedRows = 0): Promise<{ rows: number; columns: (Float64Array | Int32Array)[] }> {
-  const res = await s.conn.stream(sql);
-  let cap = Math.max(expectedRows, 2048);
-  let cols = kinds.map((k) => (k === "f64" ? new Float64Array(cap) : new Int32Array(cap)));
+  const res = await s.conn.run(sql);
+  const types = res.columnTypes();
+  kinds.forEach((k, j) => {
+    const want = k === "f64" ? "DOUBLE" : "INTEGER";
+    if (types[j]?.toString() !== want) throw new Error(`hand-off: column ${j} of the query is ${types[j]?.toString()}, not ${want} (cast it in the query)`);
+  });
+  const raw = (res as unknown as { result: duckdb.Result }).result;
+  const count = duckdb.result_chunk_count(raw);
   let rows = 0;
-  for (;;) {
-    const chunk = await res.fetchChunk();
-    if (!chunk || chunk.rowCount === 0) break;
-    const n = chunk.rowCount;
-    if (rows + n > cap) {
-      cap = Math.max(cap * 2, rows + n);
-      cols = cols.map((c) => {
-        const g = c instanceof Float64Array ? new Float64Array(cap) : new Int32Array(cap);
-        g.set(c.subarray(0, rows) as never);
-        return g;
-      });
-    }
-    for (let j = 0; j < kinds.length; j++) {
-      const v = chunk.getColumnVector(j);
-      if (hasNulls(v, n)) throw new Error(`hand-off: column ${j} holds NULLs`);
-      (cols[j] as Float64Array).set(rawItems(v, kinds[j]!, String(j)).subarray(0, n) as Float64Array, rows);
-    }
-    rows += n;
+  const chunks: duckdb.DataChunk[] = [];
+  for (let i = 0; i < count; i++) {
+    const ch = duckdb.result_get_chunk(raw, i);
+    chunks.push(ch);
+    rows += duckdb.data_chunk_get_size(ch);
   }
-  return { rows, columns: cols.map((c) => (c.length === rows ? c : c.subarray(0, rows))) as (Float64Array | Int32Array)[] };
+  void expectedRows;
+  const cols = kinds.map((k) => (k === "f64" ? new Float64Array(rows) : new Int32Array(rows)));
+  let off = 0;
+  for (const ch of chunks) {
+    const n = duckdb.data_chunk_get_size(ch);
+    for (let j = 0; j < kinds.length; j++) {
+      const vec = duckdb.data_chunk_get_vector(ch, j);
+      if (!allValid(vec, n)) throw new Error(`hand-off: column ${j} holds NULLs`);
+      const d = duckdb.vector_get_data(vec, n * BYTES[kinds[j]!]);
+      if (kinds[j] === "f64") (cols[j] as Float64Array).set(new Float64Array(d.buffer, d.byteOffset, n), off);
+      else (cols[j] as Int32Array).set(new Int32Array(d.buffer, d.byteOffset, n), off);
+    }
+    off += n;
+  }
+  return { rows, columns: cols };
 }
 
 export interface OutColumn {
@@ -65,7 +68,7 @@ export interface OutColumn {
   data: Float64Array | Int32Array;
 }
 
-/** Creates `table` with the given columns and appends `rows` rows from the typed arrays. */
+/** Creates `table` with the given columns (unless `create: false`) and appends `rows` rows from the typed arrays. */
 export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean } = {}): Promise<void> {
   if (opts.create !== false) {
     await s.run(`CREATE OR REPLACE TABLE ${ident(table)} (${columns.map((c) => `${ident(c.name)} ${c.kind === "f64" ? "DOUBLE" : "INTEGER"}`).join(", ")})`);
@@ -73,16 +76,18 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
   const appender = await s.conn.createAppender(table);
   const types: DuckDBType[] = columns.map((c) => (c.kind === "f64" ? DOUBLE : INTEGER));
   const size = 2048;
+  const chunk = DuckDBDataChunk.create(types, size).chunk;
+  const vecs = columns.map((_, j) => duckdb.data_chunk_get_vector(chunk, j));
+  const rawAppender = (appender as unknown as { appender: duckdb.Appender }).appender;
   for (let off = 0; off < rows; off += size) {
     const n = Math.min(size, rows - off);
-    const chunk = DuckDBDataChunk.create(types, n);
+    duckdb.data_chunk_set_size(chunk, n);
     for (let j = 0; j < columns.length; j++) {
-      const v = chunk.getColumnVector(j);
-      const items = rawItems(v, columns[j]!.kind, columns[j]!.name);
-      (items as Float64Array).set(columns[j]!.data.subarray(off, off + n) as Float64Array);
-      v.flush();
+      const c = columns[j]!;
+      const b = BYTES[c.kind];
+      duckdb.copy_data_to_vector(vecs[j]!, 0, c.data.buffer as ArrayBuffer, c.data.byteOffset + off * b, n * b);
     }
-    appender.appendDataChunk(chunk);
+    duckdb.append_data_chunk(rawAppender, chunk);
   }
   appender.closeSync();
 }

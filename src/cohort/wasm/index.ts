@@ -1,0 +1,111 @@
+/**
+ * The WebAssembly SIMD kernels (kernels.wat), with the same contracts as the TypeScript ones
+ * in ../kernels.ts. One instance per thread; inputs are copied into its memory in blocks.
+ */
+import { setFlagsFromString } from "node:v8";
+import { KERNELS_WASM_BASE64 } from "./kernels-binary.js";
+
+interface Kernels {
+  mem: WebAssembly.Memory;
+  product(I: number, M: number, O: number, np: number, tp: number): void;
+  solve(Z: number, St: number, init: number, I: number, A: number, np: number, T: number, clamp: number): void;
+}
+
+let inst: Kernels | null = null;
+
+function kernels(): Kernels {
+  if (!inst) {
+    // Compile with the optimising tier at once: a kernel call can run for seconds, and
+    // WebAssembly code is not replaced while it runs.
+    setFlagsFromString("--no-liftoff");
+    const mod = new WebAssembly.Module(Buffer.from(KERNELS_WASM_BASE64, "base64"));
+    const i = new WebAssembly.Instance(mod, {});
+    inst = i.exports as unknown as Kernels;
+  }
+  return inst;
+}
+
+function ensureBytes(k: Kernels, bytes: number): void {
+  const have = k.mem.buffer.byteLength;
+  if (bytes > have) k.mem.grow(Math.ceil((bytes - have) / 65536));
+}
+
+const pad4 = (n: number) => (n + 3) & ~3;
+/** Series per block: keeps each call's memory near 64 MiB whatever the batch size. */
+function blockRows(rowBytes: number): number {
+  return Math.max(4, Math.floor((64 * 2 ** 20) / (2 * rowBytes)) & ~3);
+}
+
+/** out[s, t] = Σ_{c ≤ t} inp[s, c] · M[c, t] (M: T × T, zeros where c > t). */
+export function wasmProduct(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {
+  const k = kernels();
+  const tp = pad4(T);
+  const mBytes = tp * tp * 8;
+  const rowBytes = tp * 8;
+  const block = Math.min(pad4(n), blockRows(rowBytes));
+  ensureBytes(k, mBytes + 2 * block * rowBytes);
+  let f = new Float64Array(k.mem.buffer);
+  // M in panels of 4 years: panel b holds M[c, 4b..4b+3] for every cohort c, contiguously.
+  f.fill(0, 0, tp * tp);
+  for (let b = 0; b < tp / 4; b++) {
+    const base = b * tp * 4;
+    const cEnd = Math.min(T, 4 * b + 4);
+    for (let c = 0; c < cEnd; c++) {
+      const row = c * T;
+      for (let j = 0; j < 4; j++) {
+        const t = 4 * b + j;
+        if (t < T) f[base + c * 4 + j] = M[row + t]!;
+      }
+    }
+  }
+  const iOff = mBytes;
+  const oOff = mBytes + block * rowBytes;
+  for (let s0 = 0; s0 < n; s0 += block) {
+    const m = Math.min(block, n - s0);
+    const np = pad4(m);
+    f = new Float64Array(k.mem.buffer);
+    const ib = iOff / 8;
+    if (T === tp) f.set(inp.subarray(s0 * T, (s0 + m) * T), ib);
+    else for (let s = 0; s < m; s++) f.set(inp.subarray((s0 + s) * T, (s0 + s) * T + T), ib + s * tp);
+    if (T !== tp || np !== m) {
+      for (let s = 0; s < m; s++) f.fill(0, ib + s * tp + T, ib + (s + 1) * tp);
+      f.fill(0, ib + m * tp, ib + np * tp);
+    }
+    k.product(iOff, 0, oOff, np, tp);
+    const ob = oOff / 8;
+    if (T === tp) out.set(f.subarray(ob, ob + m * T), s0 * T);
+    else for (let s = 0; s < m; s++) out.set(f.subarray(ob + s * tp, ob + s * tp + T), (s0 + s) * T);
+  }
+}
+
+/** Stock-driven solve (see stockDrivenSolve in ../kernels.ts). */
+export function wasmSolve(Z: Float64Array, n: number, T: number, St: Float64Array, init: Float64Array | null, clamp: boolean,
+  inflow: Float64Array, achieved: Float64Array): void {
+  const k = kernels();
+  const rowBytes = T * 8;
+  const stBytes = T * T * 8;
+  const block = Math.min(pad4(n), Math.max(4, Math.floor((64 * 2 ** 20) / (4 * rowBytes)) & ~3));
+  const arrays = init ? 4 : 3;
+  ensureBytes(k, stBytes + (arrays + 1) * block * rowBytes + 64);
+  let f = new Float64Array(k.mem.buffer);
+  f.set(St, 0);
+  const zOff = stBytes;
+  const iOff = zOff + block * rowBytes;
+  const aOff = iOff + block * rowBytes;
+  const initOff = init ? aOff + block * rowBytes : 0;
+  for (let s0 = 0; s0 < n; s0 += block) {
+    const m = Math.min(block, n - s0);
+    const np = pad4(m);
+    f = new Float64Array(k.mem.buffer);
+    f.set(Z.subarray(s0 * T, (s0 + m) * T), zOff / 8);
+    f.fill(0, zOff / 8 + m * T, zOff / 8 + np * T);
+    f.fill(0, iOff / 8, iOff / 8 + np * T);
+    if (init) {
+      f.set(init.subarray(s0 * T, (s0 + m) * T), initOff / 8);
+      f.fill(0, initOff / 8 + m * T, initOff / 8 + np * T);
+    }
+    k.solve(zOff, 0, initOff, iOff, aOff, np, T, clamp ? 1 : 0);
+    inflow.set(f.subarray(iOff / 8, iOff / 8 + m * T), s0 * T);
+    achieved.set(f.subarray(aOff / 8, aOff / 8 + m * T), s0 * T);
+  }
+}

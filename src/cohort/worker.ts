@@ -1,0 +1,18 @@
+/** Worker thread: runs one cohort task with the WebAssembly kernels. */
+import { parentPort } from "node:worker_threads";
+import { CohortGroup, composition, inflowDriven, stockDriven, type ModelResult } from "./models.js";
+import { buffersOf, type CohortTask } from "./pool.js";
+
+parentPort!.on("message", (t: CohortTask) => {
+  try {
+    const g = CohortGroup.fromMatrices(t.T, t.S, t.P, t.rate);
+    let r: ModelResult;
+    if (t.kind === "inflow") r = inflowDriven(g, t.values, t.n, { indicators: t.indicators, initial: t.initial ?? null });
+    else if (t.kind === "stock") r = stockDriven(g, t.values, t.n, { indicators: t.indicators, initial: t.initial ?? null, clamp: t.clamp });
+    else r = composition(g, t.values, t.n, t.content!, t.M!, null);
+    const { stockTarget: _t, ...back } = r; // the caller has the target already
+    parentPort!.postMessage({ ok: true, result: back }, buffersOf(back));
+  } catch (e) {
+    parentPort!.postMessage({ ok: false, error: (e as Error).message });
+  }
+});
