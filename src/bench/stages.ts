@@ -201,6 +201,6 @@ steps:
   const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "run"), replace: true, memoryLimit });
   const t = (performance.now() - t0) / 1000;
   if (r.status !== "ok") throw new Error(`by-cohort run failed: ${r.error}`);
-  const out = r.outputs.find((o) => o.table === "m_by_cohort")!;
-  return { stage: "by_cohort", by_cohort_series: series, by_cohort_years: years, by_cohort_rows: out.rows, by_cohort_s: t, by_cohort_rows_per_s: out.rows / t, by_cohort_memory_limit: memoryLimit };
+  const rows = r.outputs.filter((o) => o.table === "m_by_cohort").reduce((a, o) => a + o.rows, 0);
+  return { stage: "by_cohort", by_cohort_series: series, by_cohort_years: years, by_cohort_rows: rows, by_cohort_s: t, by_cohort_rows_per_s: rows / t, by_cohort_memory_limit: memoryLimit };
 }

@@ -181,9 +181,10 @@ export function initialContribution(init: InitialStock, n: number, T: number): I
   return { stock0, stock, ageSum, outAgeSum, tooOld };
 }
 
-function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: number, T: number, stock0: Float64Array | null): { stock: Float64Array; stockChange: Float64Array } {
-  const stock = new Float64Array(n * T);
-  const stockChange = new Float64Array(n * T);
+function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: number, T: number, stock0: Float64Array | null,
+  out?: OutputBuffers): { stock: Float64Array; stockChange: Float64Array } {
+  const stock = out?.stock ?? new Float64Array(n * T);
+  const stockChange = out?.stockChange ?? new Float64Array(n * T);
   for (let s = 0; s < n; s++) {
     let prev = stock0 ? stock0[s]! : 0;
     for (let t = 0; t < T; t++) {
@@ -197,9 +198,17 @@ function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: numbe
   return { stock, stockChange };
 }
 
+/** Caller-provided result arrays (n × T each), e.g. buffers handed to a worker thread. */
+export interface OutputBuffers {
+  outflow?: Float64Array;
+  stock?: Float64Array;
+  stockChange?: Float64Array;
+}
+
 export interface ModelOptions {
   indicators?: boolean;
   initial?: InitialContribution | null;
+  out?: OutputBuffers;
 }
 
 /**
@@ -211,7 +220,7 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
   const init = opts.initial ?? null;
   const rate = g.exponentialRate;
   if (rate !== null) return firstOrderDecay(inflow, n, T, rate, opts);
-  const outflow = new Float64Array(n * T);
+  const outflow = opts.out?.outflow ?? new Float64Array(n * T);
   cohortProduct(inflow, n, T, g.P, outflow);
   if (init) {
     for (let s = 0; s < n; s++) {
@@ -223,7 +232,7 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
       }
     }
   }
-  const { stock, stockChange } = finishFromOutflow(inflow, outflow, n, T, init?.stock0 ?? null);
+  const { stock, stockChange } = finishFromOutflow(inflow, outflow, n, T, init?.stock0 ?? null, opts.out);
   const r: ModelResult = { inflow, outflow, stock, stockChange };
   if (opts.indicators) addIndicators(g, r, n, init);
   if (init) r.initialTooOld = init.tooOld;

@@ -24,6 +24,8 @@ export interface CohortTask {
   /** composition: (n·M) × T content and M. */
   content?: Float64Array;
   M?: number;
+  /** Result arrays allocated by the caller and moved to the worker (it allocates none). */
+  out?: { outflow: Float64Array; stock: Float64Array; stockChange: Float64Array };
 }
 
 export function taskFor(kind: TaskKind, g: CohortGroup, values: Float64Array, n: number, extra: Partial<CohortTask> = {}): CohortTask {
@@ -129,8 +131,10 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
       const init = t.initial
         ? { stock0: t.initial.stock0.slice(from, from + n), stock: rowsOf(t.initial.stock, T), ageSum: rowsOf(t.initial.ageSum, T), outAgeSum: rowsOf(t.initial.outAgeSum, T), tooOld: t.initial.tooOld.slice(from, from + n) }
         : null;
+      const len = n * per * T;
       const part: CohortTask = {
         ...t, n, S: t.S.slice(), P: t.P.slice(), values: rowsOf(t.values, T), content: t.content ? rowsOf(t.content, per * T) : undefined, initial: init,
+        out: t.kind === "inflow" ? { outflow: new Float64Array(len), stock: new Float64Array(len), stockChange: new Float64Array(len) } : undefined,
       };
       const whole = from === 0 && n === t.n;
       jobs.push(pool.run(part).then((res) => {

@@ -7,7 +7,7 @@ parentPort!.on("message", (t: CohortTask) => {
   try {
     const g = CohortGroup.fromMatrices(t.T, t.S, t.P, t.rate);
     let r: ModelResult;
-    if (t.kind === "inflow") r = inflowDriven(g, t.values, t.n, { indicators: t.indicators, initial: t.initial ?? null });
+    if (t.kind === "inflow") r = inflowDriven(g, t.values, t.n, { indicators: t.indicators, initial: t.initial ?? null, out: t.out });
     else if (t.kind === "stock") r = stockDriven(g, t.values, t.n, { indicators: t.indicators, initial: t.initial ?? null, clamp: t.clamp });
     else r = composition(g, t.values, t.n, t.content!, t.M!, null);
     const { stockTarget: _t, ...back } = r; // the caller has the target already

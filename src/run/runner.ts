@@ -74,6 +74,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     session: s,
     pipeline: lp.pipeline,
     dir: lp.dir,
+    outputDir: rd.staging,
     audits,
     progress,
     tables,
@@ -167,6 +168,10 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     }
     await t("publish", async () => {
       for (const info of tables.values()) {
+        if (info.files) {
+          outputs.push(...info.files);
+          continue;
+        }
         if (info.publish === false) continue;
         progress.info(`publishing ${info.name}`);
         outputs.push(...(await writeParquet(s, { table: info.name, keys: info.keys, dir: rd.staging, name: info.name, partitionBy: info.publish.partition_by })));

@@ -15,6 +15,9 @@ import {
 } from "../cohort/index.js";
 import { defineStep, type StepContext } from "./types.js";
 import { candidates, describeSeries, pick, type MatchRow } from "./cohort-match.js";
+import { ByCohortWriter } from "./by-cohort-writer.js";
+import type { OutputFile } from "../publish/parquet.js";
+import path from "node:path";
 
 const Options = z.object({
   mode: z.enum(["inflow-driven", "stock-driven"]),
@@ -276,10 +279,10 @@ async function runCohortModel(ctx: StepContext, o: O) {
   const hasContent = new Uint8Array(n);
   const tick = ctx.progress.counter(`step ${o.id}: series`, n);
   let done = 0;
-  const byCohortTable = `__${o.id}_bycohort_raw`;
-  if (o.by_cohort) {
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(byCohortTable)} (sid INTEGER, ci INTEGER, yi INTEGER, inflow DOUBLE, outflow DOUBLE, stock DOUBLE)`);
-  }
+  const byCohortName = `${o.id}_by_cohort`;
+  const bcw = o.by_cohort
+    ? new ByCohortWriter(s, byCohortName, path.join(ctx.outputDir, byCohortName), ctx.outputDir, o.keys.map((k) => `m.${ident(k)}`).join(", "), `__${o.id}_sid`, y0, unit, T, n)
+    : null;
   for (const g of groups.values()) {
     const group = new CohortGroup(T, g.curves);
     const gn = g.sids.length;
@@ -363,14 +366,9 @@ async function runCohortModel(ctx: StepContext, o: O) {
         mat.sumCheck.set(rsum.stock.subarray(j * T, j * T + T), sid * T);
       });
     }
-    if (o.by_cohort) {
+    if (bcw) {
       for (const chunk of byCohort(group, r.inflow, gn)) {
-        const rows = chunk.cohort.length;
-        const sidCol = new Int32Array(rows).fill(g.sids[chunk.s]!);
-        await writeColumns(s, byCohortTable, [
-          { name: "sid", kind: "i32", data: sidCol }, { name: "ci", kind: "i32", data: chunk.cohort }, { name: "yi", kind: "i32", data: chunk.year },
-          { name: "inflow", kind: "f64", data: chunk.inflow }, { name: "outflow", kind: "f64", data: chunk.outflow }, { name: "stock", kind: "f64", data: chunk.stock },
-        ], rows, { create: false });
+        await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
       }
     }
     done += gn;
@@ -404,7 +402,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
     SELECT ${o.keys.map((k) => `m.${ident(k)}`).join(", ")}, CAST(r.yi + ${y0} AS INTEGER) AS year, r.inflow, r.outflow, r.stock, r.stock_change, ${lit(unit)} AS unit
       ${o.indicators ? `, ${nanToNull("mean_age_stock")}, ${nanToNull("mean_age_outflow")}` : ""}${extra}
     FROM ${ident(raw)} r JOIN ${sidT} m USING (sid) ORDER BY ${o.keys.map((k) => `m.${ident(k)}`).join(", ")}, year`);
-  const produced: { name: string; keys: string[] }[] = [{ name: o.id, keys: [...o.keys, "year"] }];
+  const produced: { name: string; keys: string[]; files?: OutputFile[] }[] = [{ name: o.id, keys: [...o.keys, "year"] }];
 
   // Audits.
   const tol = (cols: string) => `${a.balance_rtol} * greatest(${cols}) + ${a.balance_atol}`;
@@ -558,21 +556,21 @@ async function runCohortModel(ctx: StepContext, o: O) {
     for (const t of [matRaw, matNames, withContent, sumRaw]) await s.run(`DROP TABLE IF EXISTS ${ident(t)}`);
   }
 
-  if (o.by_cohort) {
-    await s.run(`CREATE OR REPLACE TABLE ${ident(`${o.id}_by_cohort`)} AS
-      SELECT ${o.keys.map((k) => `m.${ident(k)}`).join(", ")}, CAST(r.ci + ${y0} AS INTEGER) AS cohort, CAST(r.yi + ${y0} AS INTEGER) AS year, r.inflow, r.outflow, r.stock, ${lit(unit)} AS unit
-      FROM ${ident(byCohortTable)} r JOIN ${sidT} m USING (sid)`);
-    await s.run(`DROP TABLE ${ident(byCohortTable)}`);
-    produced.push({ name: `${o.id}_by_cohort`, keys: [...o.keys, "cohort", "year"] });
+  if (bcw) {
+    const files = await bcw.finish();
+    produced.push({ name: byCohortName, keys: [...o.keys, "cohort", "year"], files });
+    const sums = `__${o.id}_bcsums`;
+    await writeColumns(s, sums, [{ name: "sid", kind: "i32", data: sidCol }, { name: "yi", kind: "i32", data: yiCol },
+      { name: "st", kind: "f64", data: bcw.sumStock }, { name: "ou", kind: "f64", data: bcw.sumOutflow }], n * T);
     await ctx.audits.check({
       step: o.id, check: "by-cohort-total", severity: "error",
-      items: `WITH c AS (SELECT ${K}, year, sum(stock) AS st, sum(outflow) AS ou FROM ${ident(`${o.id}_by_cohort`)} GROUP BY ALL)
-        SELECT ${keyMap(o.keys, "t")} AS keys, t.year, c.st + c.ou AS observed, t.stock - r.init_stock + t.outflow - r.init_out AS expected,
-          ${a.balance_rtol} * greatest(abs(t.stock), abs(t.outflow)) + ${a.balance_atol} AS tolerance,
+      items: `SELECT ${keyMap(o.keys, "m")} AS keys, r.yi + ${y0} AS year, c.st + c.ou AS observed, r.stock - r.init_stock + r.outflow - r.init_out AS expected,
+          ${a.balance_rtol} * greatest(abs(r.stock), abs(r.outflow)) + ${a.balance_atol} AS tolerance,
           'cohort-resolved stock and outflow (model cohorts) do not add up to the totals less the initial stock''s part' AS message
-        FROM ${ident(o.id)} t JOIN c USING (${K}, year) JOIN ${sidT} m USING (${K}) JOIN ${ident(raw)} r ON r.sid = m.sid AND r.yi = t.year - ${y0}`,
+        FROM ${ident(raw)} r JOIN ${ident(sums)} c USING (sid, yi) JOIN ${sidT} m USING (sid)`,
       failMessage: "cohort-resolved totals differ",
     });
+    await s.run(`DROP TABLE ${ident(sums)}`);
   }
   for (const t of [raw, ltRaw, ltMeta]) await s.run(`DROP TABLE IF EXISTS ${ident(t)}`);
   return produced;

@@ -4,6 +4,7 @@ import type { AuditLog } from "../audit/log.js";
 import type { Session } from "../engine/session.js";
 import type { Pipeline, StepBase } from "../spec/schema.js";
 import type { Progress } from "../run/progress.js";
+import type { OutputFile } from "../publish/parquet.js";
 
 /** A table known to the run: a loaded source or a step's output. */
 export interface TableInfo {
@@ -14,6 +15,8 @@ export interface TableInfo {
   step?: string;
   /** Published as Parquet in the run directory. */
   publish: false | { partition_by?: string[] };
+  /** Already written into the run directory by the step (streamed output); not a DuckDB table. */
+  files?: OutputFile[];
 }
 
 export interface StepContext {
@@ -26,6 +29,8 @@ export interface StepContext {
   tables: Map<string, TableInfo>;
   /** A table must exist; names the step and option when it does not. */
   requireTable(name: string, option: string): TableInfo;
+  /** The run's staging directory, for steps that stream their output straight to files. */
+  outputDir: string;
   /** Columns of a table as DuckDB reports them. */
   columnsOf(name: string): Promise<string[]>;
 }
