@@ -12,6 +12,8 @@ import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
 import { RunDir } from "../publish/rundir.js";
 import { Progress } from "./progress.js";
+import { setExactSumUnit } from "../engine/sql.js";
+import { massFactor } from "../units.js";
 import { METHOD_NOTE, CAUTION } from "./method.js";
 
 const require = createRequire(import.meta.url);
@@ -55,6 +57,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     throw new PipelineError(`${out} already exists; pass --replace to swap it for the new run, or choose another --out`);
   }
   rd.create();
+  setExactSumUnit(massFactor(lp.pipeline.base_unit, "g"));
   const s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
   const audits = new AuditLog(s);
   const timings: Record<string, number> = {};
@@ -179,6 +182,9 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     });
     return await finish("ok");
   } catch (e) {
+    if (!(e instanceof CairnError) && /out of range|Conversion Error/i.test(String((e as Error).message)) && /INT64|BIGINT|round/i.test(String((e as Error).message))) {
+      e = new DataError(`a quantity too large to sum exactly (one value above 9.2 × 10^12 t; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
+    }
     if (e instanceof DataError || e instanceof AuditFailure) {
       try {
         outputs = [];

@@ -181,11 +181,13 @@ function columnRules(c: Col, src: SourceT, pipeline: Pipeline, fileType: string)
       checks.push([`${txt} IS NOT NULL AND ${typed} IS NULL`, lit(`${c.name} is not a boolean (accepted: true, false)`)]);
       break;
     case "integer": {
+      const intFile = /^(INTEGER|BIGINT|SMALLINT|TINYINT|HUGEINT|UBIGINT|UINTEGER|USMALLINT|UTINYINT)$/.test(fileType);
       const d = numericFile ? `CAST(${raw} AS DOUBLE)` : `TRY_CAST(${decimal} AS DOUBLE)`;
-      typed = `CAST(${d} AS BIGINT)`;
-      checks.push([`${d} IS NULL AND ${txt} IS NOT NULL OR NOT isfinite(${d}) OR ${d} <> round(${d})`, lit(`${c.name} is not a whole number`)]);
+      typed = intFile ? `CAST(${raw} AS BIGINT)` : `CAST(${d} AS BIGINT)`;
+      if (!intFile) checks.push([`${d} IS NULL AND ${txt} IS NOT NULL OR NOT isfinite(${d}) OR ${d} <> round(${d})`, lit(`${c.name} is not a whole number`)]);
       if (c.name === "year" && pipeline.years) {
-        checks.push([`${d} < ${pipeline.years.first} OR ${d} > ${pipeline.years.last}`, lit(`year outside the horizon ${pipeline.years.first}..${pipeline.years.last}`)]);
+        const y = intFile ? raw : d;
+        checks.push([`${y} < ${pipeline.years.first} OR ${y} > ${pipeline.years.last}`, lit(`year outside the horizon ${pipeline.years.first}..${pipeline.years.last}`)]);
       }
       break;
     }
@@ -269,9 +271,11 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     const allChecks: { cond: string; reason: string; column: string }[] = [];
     for (const r of rules) for (const [cond, reason] of r.checks) allChecks.push({ cond: `coalesce(${cond}, FALSE)`, reason, column: r.c.name });
     for (const u of unitChecks) allChecks.push({ ...u, cond: `coalesce(${u.cond}, FALSE)` });
-    const reasonExpr = allChecks.length ? `NULLIF(concat_ws('; ', ${allChecks.map((k) => `CASE WHEN ${k.cond} THEN ${k.reason} END`).join(", ")}), '')` : "CAST(NULL AS VARCHAR)";
-    const firstCol = allChecks.length ? `CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN ${lit(k.column)}`).join(" ")} END` : "CAST(NULL AS VARCHAR)";
-    const firstVal = allChecks.length ? `CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN CAST(${ident(k.column)} AS VARCHAR)`).join(" ")} END` : "CAST(NULL AS VARCHAR)";
+    // Reasons are only spelled out for rows that fail (one cheap test per row otherwise).
+    const anyBad = allChecks.length ? `(${allChecks.map((k) => k.cond).join(" OR ")})` : "FALSE";
+    const reasonExpr = allChecks.length ? `CASE WHEN ${anyBad} THEN NULLIF(concat_ws('; ', ${allChecks.map((k) => `CASE WHEN ${k.cond} THEN ${k.reason} END`).join(", ")}), '') END` : "CAST(NULL AS VARCHAR)";
+    const firstCol = allChecks.length ? `CASE WHEN ${anyBad} THEN CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN ${lit(k.column)}`).join(" ")} END END` : "CAST(NULL AS VARCHAR)";
+    const firstVal = allChecks.length ? `CASE WHEN ${anyBad} THEN CASE ${allChecks.map((k) => `WHEN ${k.cond} THEN CAST(${ident(k.column)} AS VARCHAR)`).join(" ")} END END` : "CAST(NULL AS VARCHAR)";
     const typedSel = rules
       .map((r) => {
         if (hasQty && r.c.name === "unit") return `${unitTyped} AS "unit"`;

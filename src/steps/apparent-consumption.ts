@@ -58,7 +58,7 @@ export const apparentConsumptionStep = defineStep({
     if (badFlows.length) {
       throw new DataError(`step ${id}: trade table ${o.trade}, column ${tc.flow}: unknown flow label(s) ${badFlows.map((b) => `${JSON.stringify(b.f)} (${b.n} rows)`).join(", ")}; accepted: ${JSON.stringify(imp)}, ${JSON.stringify(exp)} (set flows: {import: …, export: …})`);
     }
-    await s.run(`CREATE OR REPLACE TEMP TABLE ${T("trade")} AS
+    await s.run(`CREATE OR REPLACE ${o.mirror_fill ? "TABLE" : "VIEW"} ${T("trade")} AS
       SELECT CAST(${ident(tc.reporter!)} AS VARCHAR) AS reporter, CAST(${ident(tc.partner!)} AS VARCHAR) AS partner, ${ident(tc.commodity!)} AS commodity,
         CASE WHEN ${ident(tc.flow!)} = ${lit(imp)} THEN 'import' ELSE 'export' END AS flow, ${ident(tc.year!)} AS year,
         CAST(${ident(tc.quantity!)} AS DOUBLE) AS quantity, ${tUnit} AS unit, FALSE AS mirrored
@@ -74,15 +74,18 @@ export const apparentConsumptionStep = defineStep({
       await ctx.audits.note(id, "mirror-fill", "warning", "pass", `${filled} reporter-years without trade reports filled from partners' reports (${mirroredRows} mirrored rows, marked mirrored = true)`, filled, null);
     }
 
-    // Trade asymmetry where both sides report.
+    // Trade asymmetry where both sides report: one pass, keyed by (importer, exporter).
     await ctx.audits.check({
       step: id, check: "trade-asymmetry", severity: a.asymmetry_severity,
-      items: `WITH m AS (SELECT reporter, partner, commodity, year, ${exactSum("quantity")} AS q FROM ${T("trade")} WHERE NOT mirrored AND flow = 'import' GROUP BY ALL),
-        x AS (SELECT reporter, partner, commodity, year, ${exactSum("quantity")} AS q FROM ${T("trade")} WHERE NOT mirrored AND flow = 'export' GROUP BY ALL)
-        SELECT MAP(['importer', 'exporter', 'commodity'], [m.reporter, m.partner, CAST(m.commodity AS VARCHAR)]) AS keys, m.year,
-          m.q AS observed, x.q AS expected, ${a.asymmetry_threshold} * greatest(abs(m.q), abs(x.q)) AS tolerance,
-          'imports reported by ' || m.reporter || ' from ' || m.partner || ' (' || m.q || ') differ from the exports reported by ' || m.partner || ' (' || x.q || ') by more than ' || ${lit(String(a.asymmetry_threshold * 100))} || ' %' AS message
-        FROM m JOIN x ON x.reporter = m.partner AND x.partner = m.reporter AND x.commodity = m.commodity AND x.year = m.year`,
+      items: `WITH p AS (
+          SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
+            CAST(commodity AS VARCHAR) AS commodity, year,
+            ${exactSum("CASE WHEN flow = 'import' THEN quantity END")} AS m, ${exactSum("CASE WHEN flow = 'export' THEN quantity END")} AS x
+          FROM ${T("trade")} WHERE NOT mirrored GROUP BY ALL HAVING count(*) FILTER (WHERE flow = 'import') > 0 AND count(*) FILTER (WHERE flow = 'export') > 0)
+        SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
+          m AS observed, x AS expected, ${a.asymmetry_threshold} * greatest(abs(m), abs(x)) AS tolerance,
+          'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(a.asymmetry_threshold * 100))} || ' %' AS message
+        FROM p`,
       failMessage: "trade asymmetry",
     });
 
@@ -137,7 +140,7 @@ export const apparentConsumptionStep = defineStep({
     await s.run(`CREATE OR REPLACE TABLE ${ident(id)} AS
       SELECT ${idents(keys)}, year, production, imports, exports, ${consumption} AS consumption, ${lit(ctx.pipeline.base_unit)} AS unit, mirrored${flag}
       FROM ${T("raw")} ORDER BY ${idents(keys)}, year`);
-    await s.run(`DROP VIEW ${T("flows")}; DROP TABLE ${T("trade")}; DROP TABLE ${T("raw")}`);
+    await s.run(`DROP VIEW ${T("flows")}; DROP ${o.mirror_fill ? "TABLE" : "VIEW"} ${T("trade")}; DROP TABLE ${T("raw")}`);
     return [{ name: id, keys: [...keys, "year"] }, ...extra];
   },
 });

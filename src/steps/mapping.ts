@@ -88,10 +88,14 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
       CASE WHEN __nomass THEN 'piece' ELSE ${base} END AS unit, reason
     FROM ${massed} WHERE reason IS NOT NULL ORDER BY ${idents([...g, "commodity", "year"])}`);
   const outKeys = r.outputKeys ?? [...g, "product", "material"];
+  // When the output keeps the group keys, the mass distributed by the shares is summed in the
+  // same pass (hidden columns), so the conservation audit needs no second join.
+  const inPass = g.every((k) => outKeys.includes(k));
+  const distCols = inPass ? r.values.map((v) => `, ${exactSum(`coalesce(m.${ident(v)}, 0) * c.share`)} AS ${ident("__dist_" + v)}`).join("") : "";
   await s.run(`CREATE OR REPLACE TABLE ${ident(r.output)} AS
     SELECT ${outKeys.map((k) => (g.includes(k) ? `m.${ident(k)}` : `c.${ident(k)}`)).join(", ")}, m.year,
       ${r.values.map((v) => `${exactSum(`m.${ident(v)} * c.factor * c.share`)} AS ${ident(v)}`).join(", ")}, ${base} AS unit
-      ${flags.map((f) => `, bool_or(m.${ident(f)}) AS ${ident(f)}`).join("")}
+      ${flags.map((f) => `, bool_or(m.${ident(f)}) AS ${ident(f)}`).join("")}${distCols}
     FROM ${massed} m JOIN ${conc} c ON c.commodity = m.commodity
     WHERE m.reason IS NULL
     GROUP BY ALL ORDER BY ${idents([...outKeys, "year"])}`);
@@ -102,9 +106,12 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   await s.run(`CREATE OR REPLACE TABLE ${cons} AS
     WITH inp AS (SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(`coalesce(${ident(v)}, 0)`)} AS ${ident("in_" + v)}, ${exactSum(`CASE WHEN reason IS NOT NULL THEN coalesce(${ident(v)}, 0) ELSE 0 END`)} AS ${ident("un_" + v)}`).join(", ")}
         FROM ${massed} WHERE NOT __nomass GROUP BY ALL),
-      dist AS (SELECT ${gl("m.")}m.year, ${r.values.map((v) => `${exactSum(`coalesce(m.${ident(v)}, 0) * c.share`)} AS ${ident("out_" + v)}`).join(", ")}
-        FROM ${massed} m JOIN ${conc} c ON c.commodity = m.commodity WHERE m.reason IS NULL GROUP BY ALL)
+      dist AS (${inPass
+        ? `SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(ident("__dist_" + v))} AS ${ident("out_" + v)}`).join(", ")} FROM ${ident(r.output)} GROUP BY ALL`
+        : `SELECT ${gl("m.")}m.year, ${r.values.map((v) => `${exactSum(`coalesce(m.${ident(v)}, 0) * c.share`)} AS ${ident("out_" + v)}`).join(", ")}
+        FROM ${massed} m JOIN ${conc} c ON c.commodity = m.commodity WHERE m.reason IS NULL GROUP BY ALL`})
     SELECT * FROM inp LEFT JOIN dist USING (${idents(keyCols)})`);
+  if (inPass) for (const v of r.values) await s.run(`ALTER TABLE ${ident(r.output)} DROP COLUMN ${ident("__dist_" + v)}`);
   for (const v of r.values) {
     await ctx.audits.check({
       step: r.step, check: `concordance-conservation:${v}`, severity: "error",
