@@ -32,6 +32,13 @@ export function taskFor(kind: TaskKind, g: CohortGroup, values: Float64Array, n:
   return { kind, T: g.T, n, S: g.S, P: g.P, rate: g.exponentialRate, values, ...extra };
 }
 
+/** The compiled worker script (from TypeScript sources under test, the built copy in dist/). */
+function workerFile(): URL {
+  const here = import.meta.url;
+  if (here.endsWith(".ts")) return new URL(here.replace(/\/src\/cohort\/pool\.ts$/, "/dist/cohort/worker.js"));
+  return new URL("./worker.js", here);
+}
+
 type Pending = { task: CohortTask; resolve: (r: ModelResult) => void; reject: (e: Error) => void };
 
 export class CohortPool {
@@ -57,7 +64,7 @@ export class CohortPool {
 
   constructor(readonly size: number) {
     for (let i = 0; i < size; i++) {
-      const w = new Worker(new URL("./worker.js", import.meta.url));
+      const w = new Worker(workerFile());
       w.unref();
       w.on("message", (msg: { ok: boolean; result?: ModelResult; error?: string }) => {
         const p = this.busy.get(w)!;
