@@ -8,7 +8,7 @@ import { Session } from "../engine/session.js";
 import { lit } from "../engine/sql.js";
 import { readColumns, writeColumns } from "../engine/handoff.js";
 import { CohortGroup, curveOf, makeLifetime } from "../cohort/index.js";
-import { CohortPool, runTasks, taskFor } from "../cohort/pool.js";
+import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
 import { mulberry32 } from "../data/prng.js";
 
 export const SIZES = { S: 1e6, M: 1e7, L: 1e8 } as const;
@@ -122,6 +122,7 @@ export async function cohortStage(series: number, years: number, groups: number,
   const inflowT = await timed(runs, async () => {
     const rs = await runTasks(w.groups.map((g, i) => taskFor("inflow", g.group, slices[i]!, g.n)), pool);
     rs.forEach((r, i) => stocks.set(r.stock, w.groups[i]!.from * years));
+    recycle(...rs.map((r) => ({ outflow: r.outflow, stock: r.stock, stockChange: r.stockChange, inflow: r.inflow === slices[0] ? undefined : r.inflow })));
   }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`));
   let maxErr = 0;
   const stockT = await timed(runs, async () => {
@@ -130,6 +131,7 @@ export async function cohortStage(series: number, years: number, groups: number,
       const g = w.groups[gi]!;
       for (let i = 0; i < r.inflow.length; i += 997) maxErr = Math.max(maxErr, Math.abs(r.inflow[i]! - w.inflow[g.from * years + i]!) / w.inflow[g.from * years + i]!);
     });
+    recycle(...rs.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
   }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
   const M = 3;
   const contents = w.groups.map((g) => {
@@ -138,7 +140,8 @@ export async function cohortStage(series: number, years: number, groups: number,
     return content;
   });
   const compT = await timed(runs, async () => {
-    await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
+    const rs = await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
+    recycle(...rs.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
   }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`));
   await CohortPool.closeShared();
   return {

@@ -25,6 +25,9 @@ let useWasm = process.env.CAIRN_KERNELS !== "ts";
 export function setKernels(kind: "wasm" | "ts"): void {
   useWasm = kind === "wasm";
 }
+export function wasmKernels(): boolean {
+  return useWasm;
+}
 
 /** The plain TypeScript kernel, 4 × 4 register blocking. */
 export function cohortProductTS(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {

@@ -7,7 +7,8 @@
  */
 import type { Lifetime } from "./distributions/types.js";
 import { leavingVector, sigmaAt, survivalVector, ageHorizon } from "./discretise.js";
-import { cohortProduct, stockDrivenSolve } from "./kernels.js";
+import { cohortProduct, stockDrivenSolve, wasmKernels } from "./kernels.js";
+import { wasmInflow } from "./wasm/index.js";
 
 /** Survival and leaving shares of one lifetime, computed once and shared. */
 export interface Curve {
@@ -200,6 +201,7 @@ function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: numbe
 
 /** Caller-provided result arrays (n × T each), e.g. buffers handed to a worker thread. */
 export interface OutputBuffers {
+  inflow?: Float64Array;
   outflow?: Float64Array;
   stock?: Float64Array;
   stockChange?: Float64Array;
@@ -220,6 +222,26 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
   const init = opts.initial ?? null;
   const rate = g.exponentialRate;
   if (rate !== null) return firstOrderDecay(inflow, n, T, rate, opts);
+  if (wasmKernels()) {
+    // One WebAssembly call: outflow, the initial stock's outflow, and the balance.
+    let initOut: Float64Array | null = null;
+    if (init) {
+      initOut = new Float64Array(n * T);
+      for (let s = 0; s < n; s++) {
+        let prev = init.stock0[s]!;
+        for (let t = 0; t < T; t++) {
+          const v = init.stock[s * T + t]!;
+          initOut[s * T + t] = prev - v;
+          prev = v;
+        }
+      }
+    }
+    const w = wasmInflow(inflow, n, T, g.P, initOut, init?.stock0 ?? null, opts.out);
+    const r: ModelResult = { inflow, ...w };
+    if (opts.indicators) addIndicators(g, r, n, init);
+    if (init) r.initialTooOld = init.tooOld;
+    return r;
+  }
   const outflow = opts.out?.outflow ?? new Float64Array(n * T);
   cohortProduct(inflow, n, T, g.P, outflow);
   if (init) {
@@ -321,11 +343,11 @@ export function stockDriven(g: CohortGroup, target: Float64Array, n: number, opt
   for (let c = 0; c < T; c++) {
     if (!(g.S[c * T + c]! > 0)) throw new Error(`cohort ${c}: σ(0) = 0 (everything leaves in the year of entry), so no inflow can build a stock`);
   }
-  const inflow = new Float64Array(n * T);
-  const achieved = new Float64Array(n * T);
+  const inflow = opts.out?.inflow ?? new Float64Array(n * T);
+  const achieved = opts.out?.stock ?? new Float64Array(n * T);
   stockDrivenSolve(target, n, T, g.transposedS(), init ? init.stock : null, Boolean(opts.clamp), inflow, achieved);
-  const outflow = new Float64Array(n * T);
-  const stockChange = new Float64Array(n * T);
+  const outflow = opts.out?.outflow ?? new Float64Array(n * T);
+  const stockChange = opts.out?.stockChange ?? new Float64Array(n * T);
   for (let s = 0; s < n; s++) {
     let prev = init ? init.stock0[s]! : 0;
     for (let t = 0; t < T; t++) {
@@ -352,15 +374,15 @@ export function stockDriven(g: CohortGroup, target: Float64Array, n: number, opt
  * `content` is (n·M) × T: for series s and material m, row s·M + m holds content by cohort.
  */
 export function composition(g: CohortGroup, inflow: Float64Array, n: number, content: Float64Array, M: number,
-  initialMaterial: InitialContribution | null = null): ModelResult {
+  initialMaterial: InitialContribution | null = null, out?: OutputBuffers): ModelResult {
   const T = g.T;
-  const mi = new Float64Array(n * M * T);
+  const mi = out?.inflow ?? new Float64Array(n * M * T);
   for (let s = 0; s < n; s++)
     for (let m = 0; m < M; m++) {
       const row = (s * M + m) * T;
       for (let t = 0; t < T; t++) mi[row + t] = inflow[s * T + t]! * content[row + t]!;
     }
-  return inflowDriven(g, mi, n * M, { initial: initialMaterial });
+  return inflowDriven(g, mi, n * M, { initial: initialMaterial, out });
 }
 
 /**

@@ -25,7 +25,7 @@ export interface CohortTask {
   content?: Float64Array;
   M?: number;
   /** Result arrays allocated by the caller and moved to the worker (it allocates none). */
-  out?: { outflow: Float64Array; stock: Float64Array; stockChange: Float64Array };
+  out?: { inflow?: Float64Array; outflow: Float64Array; stock: Float64Array; stockChange: Float64Array };
 }
 
 export function taskFor(kind: TaskKind, g: CohortGroup, values: Float64Array, n: number, extra: Partial<CohortTask> = {}): CohortTask {
@@ -109,6 +109,32 @@ export class CohortPool {
 const FIELDS = ["inflow", "outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow", "unmet"] as const;
 
 /**
+ * Reused buffers by length. Writing to freshly allocated memory costs a page fault per 4 KiB,
+ * which here costs about as much as the kernel itself; buffers that travel to a worker and
+ * back are kept for the next task of the same size. `recycle()` returns results to it.
+ */
+const free = new Map<number, Float64Array[]>();
+function take(len: number): Float64Array {
+  return free.get(len)?.pop() ?? new Float64Array(len);
+}
+function copyOf(a: Float64Array, from: number, to: number): Float64Array {
+  const b = take(to - from);
+  b.set(a.subarray(from, to));
+  return b;
+}
+/** Hands arrays (e.g. results no longer needed) back for reuse by later tasks. */
+export function recycle(...arrays: (Float64Array | undefined | object)[]): void {
+  for (const a of arrays) {
+    if (a instanceof Float64Array) {
+      if (a.byteOffset !== 0 || a.length * 8 !== a.buffer.byteLength || a.buffer instanceof SharedArrayBuffer) continue;
+      const l = free.get(a.length) ?? [];
+      if (!l.includes(a)) l.push(a);
+      free.set(a.length, l);
+    } else if (a && typeof a === "object") recycle(...Object.values(a));
+  }
+}
+
+/**
  * Runs many tasks over the pool; each task is split in parts so that every worker has work.
  * Each part travels as compact copies whose buffers are transferred (moved, not cloned) both
  * ways. (Shared memory would save the copies, but element access to SharedArrayBuffer-backed
@@ -134,17 +160,20 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
     results[ti] = r;
     for (let from = 0; from < t.n; from += target) {
       const n = Math.min(target, t.n - from);
-      const rowsOf = (a: Float64Array, width: number) => a.slice(from * width, (from + n) * width);
+      const rowsOf = (a: Float64Array, width: number) => copyOf(a, from * width, (from + n) * width);
       const init = t.initial
         ? { stock0: t.initial.stock0.slice(from, from + n), stock: rowsOf(t.initial.stock, T), ageSum: rowsOf(t.initial.ageSum, T), outAgeSum: rowsOf(t.initial.outAgeSum, T), tooOld: t.initial.tooOld.slice(from, from + n) }
         : null;
       const len = n * per * T;
       const part: CohortTask = {
-        ...t, n, S: t.S.slice(), P: t.P.slice(), values: rowsOf(t.values, T), content: t.content ? rowsOf(t.content, per * T) : undefined, initial: init,
-        out: t.kind === "inflow" ? { outflow: new Float64Array(len), stock: new Float64Array(len), stockChange: new Float64Array(len) } : undefined,
+        ...t, n, S: copyOf(t.S, 0, t.S.length), P: copyOf(t.P, 0, t.P.length), values: rowsOf(t.values, T), content: t.content ? rowsOf(t.content, per * T) : undefined, initial: init,
+        out: t.kind === "inflow" ? { outflow: take(len), stock: take(len), stockChange: take(len) }
+          : { inflow: take(len), outflow: take(len), stock: take(len), stockChange: take(len) },
       };
       const whole = from === 0 && n === t.n;
       jobs.push(pool.run(part).then((res) => {
+        const back = res as ModelResult & { inputs?: object };
+        recycle(back.inputs);
         if (whole) {
           for (const f of fields) r[f] = res[f]!;
           if (res.initialTooOld) r.initialTooOld = res.initialTooOld;
@@ -152,6 +181,7 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
         }
         for (const f of fields) r[f]!.set(res[f]!, from * per * T);
         if (res.initialTooOld) r.initialTooOld!.set(res.initialTooOld, from);
+        recycle(...fields.map((f) => res[f]));
       }));
     }
   });

@@ -7,7 +7,7 @@
   ;; np and tp are multiples of 4. M comes in panels: panel b (years 4b..4b+3) holds, for each
   ;; cohort c, the 4 values M[c, 4b..4b+3] contiguously, at (b·tp·4 + c·4) doubles.
   ;; 4 series × 4 years per block: 8 accumulators of two years each.
-  (func (export "product") (param $I i32) (param $M i32) (param $O i32) (param $np i32) (param $tp i32)
+  (func $product (export "product") (param $I i32) (param $M i32) (param $O i32) (param $np i32) (param $tp i32)
     (local $rb i32) (local $s0 i32) (local $t0 i32) (local $c i32) (local $cend i32)
     (local $p0 i32) (local $p1 i32) (local $p2 i32) (local $p3 i32) (local $mp i32) (local $o i32)
     (local $a00 v128) (local $a01 v128) (local $a10 v128) (local $a11 v128)
@@ -86,6 +86,42 @@
             (local.set $t0 (i32.add (local.get $t0) (i32.const 4)))
             (br $tloop)))
         (local.set $s0 (i32.add (local.get $s0) (i32.const 4)))
+        (br $sloop))))
+
+
+  ;; Inflow-driven model in one call: outflow O = product(I, M) (+ initOut, the initial
+  ;; stock's outflow, when initOut ≠ 0), then the balance per series:
+  ;;   S[s, t] = S[s, t − 1] + I[s, t] − O[s, t], D[s, t] = S[s, t] − S[s, t − 1], S[s, −1] = stock0[s]
+  ;; (stock0 = 0: none). Same layout rules as product.
+  (func (export "inflow") (param $I i32) (param $M i32) (param $O i32) (param $S i32) (param $D i32)
+        (param $initOut i32) (param $stock0 i32) (param $np i32) (param $tp i32)
+    (local $i i32) (local $end i32) (local $s i32) (local $t i32) (local $prev f64) (local $o f64) (local $v f64)
+    (call $product (local.get $I) (local.get $M) (local.get $O) (local.get $np) (local.get $tp))
+    (local.set $s (i32.const 0))
+    (block $sdone
+      (loop $sloop
+        (br_if $sdone (i32.ge_u (local.get $s) (local.get $np)))
+        (local.set $prev (f64.const 0))
+        (if (local.get $stock0)
+          (then (local.set $prev (f64.load (i32.add (local.get $stock0) (i32.shl (local.get $s) (i32.const 3)))))))
+        ;; byte offset of element (s, 0)
+        (local.set $i (i32.shl (i32.mul (local.get $s) (local.get $tp)) (i32.const 3)))
+        (local.set $end (i32.add (local.get $i) (i32.shl (local.get $tp) (i32.const 3))))
+        (block $tdone
+          (loop $tloop
+            (br_if $tdone (i32.ge_u (local.get $i) (local.get $end)))
+            (local.set $o (f64.load (i32.add (local.get $O) (local.get $i))))
+            (if (local.get $initOut)
+              (then
+                (local.set $o (f64.add (local.get $o) (f64.load (i32.add (local.get $initOut) (local.get $i)))))
+                (f64.store (i32.add (local.get $O) (local.get $i)) (local.get $o))))
+            (local.set $v (f64.sub (f64.add (local.get $prev) (f64.load (i32.add (local.get $I) (local.get $i)))) (local.get $o)))
+            (f64.store (i32.add (local.get $S) (local.get $i)) (local.get $v))
+            (f64.store (i32.add (local.get $D) (local.get $i)) (f64.sub (local.get $v) (local.get $prev)))
+            (local.set $prev (local.get $v))
+            (local.set $i (i32.add (local.get $i) (i32.const 8)))
+            (br $tloop)))
+        (local.set $s (i32.add (local.get $s) (i32.const 1)))
         (br $sloop))))
 
   ;; Stock-driven solve, 4 series at a time (np multiple of 4; rows of length t = T, unpadded):
