@@ -16,6 +16,10 @@ import {
 import { defineStep, type StepContext } from "./types.js";
 import { candidates, describeSeries, pick, type MatchRow } from "./cohort-match.js";
 import { ByCohortWriter } from "./by-cohort-writer.js";
+import { CohortPool, runTasks, taskFor } from "../cohort/pool.js";
+
+/** Below this many cells a step runs its models in the main thread (worker start-up costs more). */
+const POOL_MIN_CELLS = Number(process.env.CAIRN_POOL_MIN_CELLS ?? 2e8);
 import type { OutputFile } from "../publish/parquet.js";
 import path from "node:path";
 
@@ -283,7 +287,8 @@ async function runCohortModel(ctx: StepContext, o: O) {
   const bcw = o.by_cohort
     ? new ByCohortWriter(s, byCohortName, path.join(ctx.outputDir, byCohortName), ctx.outputDir, o.keys.map((k) => `m.${ident(k)}`).join(", "), `__${o.id}_sid`, y0, unit, T, n)
     : null;
-  for (const g of groups.values()) {
+  // Prepare every group, then run the models: on the worker pool when the work is large.
+  const prepared = [...groups.values()].map((g) => {
     const group = new CohortGroup(T, g.curves);
     const gn = g.sids.length;
     const gather = (src: Float64Array, width: number) => {
@@ -291,14 +296,9 @@ async function runCohortModel(ctx: StepContext, o: O) {
       g.sids.forEach((sid, j) => x.set(src.subarray(sid * width, sid * width + width), j * width));
       return x;
     };
-    const scatter = (dst: Float64Array, src: Float64Array, width: number) => {
-      g.sids.forEach((sid, j) => dst.set(src.subarray(j * width, j * width + width), sid * width));
-    };
     let init: InitialContribution | null = null;
     if (g.initCurves.length) {
       init = initialContribution({ byAge: initByAge ? gather(initByAge, A) : null, total: initTotal ? gatherVec(initTotal, g.sids) : new Float64Array(gn), A, curves: g.initCurves }, gn, T);
-    }
-    if (init) {
       g.sids.forEach((sid, j) => {
         let prev = init!.stock0[j]!;
         for (let t = 0; t < T; t++) {
@@ -309,15 +309,30 @@ async function runCohortModel(ctx: StepContext, o: O) {
         }
       });
     }
-    const v = gather(value, T);
-    let r: ModelResult;
-    try {
-      r = o.mode === "inflow-driven"
-        ? inflowDriven(group, v, gn, { indicators: o.indicators, initial: init })
-        : stockDriven(group, v, gn, { indicators: o.indicators, initial: init, clamp: o.negative_inflow === "clamp" });
-    } catch (e) {
-      throw new DataError(`step ${o.id}: series ${describeSeries(o.keys, ser.keyValues[g.sids[0]!]!)}: ${(e as Error).message}`);
+    if (o.mode === "stock-driven") {
+      for (let c = 0; c < T; c++) {
+        if (!(group.S[c * T + c]! > 0)) throw new DataError(`step ${o.id}: series ${describeSeries(o.keys, ser.keyValues[g.sids[0]!]!)}, cohort ${y0 + c}: σ(0) = 0 (everything leaves in the year of entry), so no inflow can build a stock`);
+      }
     }
+    return { g, group, gn, init, v: gather(value, T) };
+  });
+  const cells = n * T * (T + 1) / 2;
+  const usePool = cells >= POOL_MIN_CELLS && CohortPool.shared().size > 1;
+  const modelOf = (x: (typeof prepared)[number]): ModelResult =>
+    o.mode === "inflow-driven"
+      ? inflowDriven(x.group, x.v, x.gn, { indicators: o.indicators, initial: x.init })
+      : stockDriven(x.group, x.v, x.gn, { indicators: o.indicators, initial: x.init, clamp: o.negative_inflow === "clamp" });
+  const results: ModelResult[] = usePool
+    ? await runTasks(prepared.map((x) => taskFor(o.mode === "inflow-driven" ? "inflow" : "stock", x.group, x.v, x.gn,
+        { indicators: o.indicators, initial: x.init, clamp: o.negative_inflow === "clamp" })))
+    : [];
+  if (usePool) ctx.progress.info(`step ${o.id}: ${prepared.length} lifetime groups on ${CohortPool.shared().size} worker threads`);
+  for (const [gi, x] of prepared.entries()) {
+    const { g, group, gn, init } = x;
+    const scatter = (dst: Float64Array, src: Float64Array, width: number) => {
+      g.sids.forEach((sid, j) => dst.set(src.subarray(j * width, j * width + width), sid * width));
+    };
+    const r: ModelResult = usePool ? results[gi]! : modelOf(x);
     scatter(out.inflow, r.inflow, T);
     scatter(out.outflow, r.outflow, T);
     scatter(out.stock, r.stock, T);
