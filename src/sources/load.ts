@@ -221,7 +221,8 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const header = src.csv?.header ?? true;
   const csvRejT = `__csvrej_${name}`;
   const csvScanT = `__csvscan_${name}`;
-  const checkedT = `__checked_${name}`;
+  let checkedT = `__checked_${name}`;
+  const checkedView = `__checkedv_${name}`;
 
   const fromExpr = async (numbered: boolean): Promise<{ from: string; types: Map<string, string> }> => {
     let from: string;
@@ -285,8 +286,22 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
       .concat(hasQty && !hasUnitCol ? [`${unitTyped} AS unit`] : [])
       .join(", ");
     await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
-    await s.run(`CREATE OR REPLACE TABLE ${ident(checkedT)} AS
-      SELECT ${typedSel}, __file, __row, ${reasonExpr} AS __reason, ${firstCol} AS __col, ${firstVal} AS __value FROM ${from}`);
+    const select = `SELECT ${typedSel}, __file, __row, ${reasonExpr} AS __reason, ${firstCol} AS __col, ${firstVal} AS __value FROM ${from}`;
+    if (format === "parquet") {
+      // Parquet is typed and fast to rescan: check it through a view, and keep the view as the
+      // source when it is clean (no copy of the data). Only a source with rejects is materialised.
+      await s.run(`CREATE OR REPLACE VIEW ${ident(checkedView)} AS ${select}`);
+      const badRows = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedView)} WHERE __reason IS NOT NULL`));
+      const dupKeys = keyCols.length
+        ? Number(await s.scalar(`SELECT count(*) FROM (SELECT ${idents(keyCols)} FROM ${ident(checkedView)} WHERE __reason IS NULL GROUP BY ALL HAVING count(*) > 1)`))
+        : 0;
+      if (badRows === 0 && dupKeys === 0) {
+        checkedT = checkedView;
+        return;
+      }
+      checkedT = `__checked_${name}`;
+    }
+    await s.run(`CREATE OR REPLACE TABLE ${ident(checkedT)} AS ${select}`);
     if (keyCols.length > 0) {
       const dupT = `__dups_${name}`;
       await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(dupT)} AS SELECT ${idents(keyCols)}, count(*) AS n FROM ${ident(checkedT)} WHERE __reason IS NULL GROUP BY ALL HAVING count(*) > 1`);

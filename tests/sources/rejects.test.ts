@@ -193,3 +193,31 @@ describe("bad input data ends in rejects or clear errors", () => {
 });
 
 void DataError;
+
+describe("Parquet sources", () => {
+  it("clean files are used as they are; bad rows and duplicate keys are rejected with their row number", async () => {
+    const dir = tmp();
+    const s = await Session.open();
+    await s.run(`COPY (SELECT * FROM (VALUES ('A', 'c1', 2000, 100.0), ('B', 'c1', 2000, -4.0), ('C', 'c1', 2001, 1.0), ('C', 'c1', 2001, 2.0), ('D', 'c1', 2002, 'NaN'::DOUBLE))
+      t(region, commodity, year, quantity)) TO '${dir}/production.parquet' (FORMAT parquet)`);
+    await s.run(`COPY (SELECT 'A' AS region, 'c1' AS commodity, 2000 AS year, 5.0 AS quantity) TO '${dir}/clean.parquet' (FORMAT parquet)`);
+    s.close();
+    write(dir, {
+      "p.yaml": PIPE().replace("path: production.csv", "path: production.parquet"),
+      "q.yaml": PIPE().replace("path: production.csv", "path: clean.parquet"),
+      "trade.csv": GOOD_TRADE,
+    });
+    const bad = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "out") });
+    expect(bad.exit_code).toBe(3);
+    const rows = await rejects(dir);
+    expect(rows.map((r) => [Number(r.row), r.column, String(r.reason).split(" (")[0]])).toEqual([
+      [2, "quantity", "negative quantity"],
+      [3, "region,commodity,year", "duplicate key"],
+      [4, "region,commodity,year", "duplicate key"],
+      [5, "quantity", "quantity is not finite"],
+    ]);
+    const ok = await runPipeline(loadPipeline(path.join(dir, "q.yaml")), { out: path.join(dir, "ok") });
+    expect(ok.status).toBe("ok");
+    expect(ok.sources[0]).toMatchObject({ rowsRead: 1, rowsLoaded: 1, rowsRejected: 0 });
+  });
+});
