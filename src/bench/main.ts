@@ -47,7 +47,7 @@ async function main(): Promise<void> {
   if (!(size in SIZES)) throw new Error(`--size takes S, M or L (got ${size})`);
   const runs = arg("runs") ?? "3";
   const json = flag("json");
-  const mem = arg("memory-limit") ?? "6GB";
+  const mem = arg("memory-limit") ?? "4GB";
   const series = Number(arg("series") ?? 100000);
   const years = Number(arg("years") ?? 200);
   const results: StageResult[] = [];
