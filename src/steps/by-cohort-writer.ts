@@ -10,7 +10,7 @@ import type { Session } from "../engine/session.js";
 import { ident, lit } from "../engine/sql.js";
 import { writeColumns } from "../engine/handoff.js";
 import { sha256, type OutputFile } from "../publish/parquet.js";
-import { statSync } from "node:fs";
+import { renameSync, rmSync, statSync } from "node:fs";
 
 export class ByCohortWriter {
   private readonly cap: number;
@@ -89,8 +89,28 @@ export class ByCohortWriter {
     this.used = 0;
   }
 
+  /**
+   * Publishes the parts: a single part becomes `<table>.parquet`; several stay as the folder
+   * `<table>/part-NNNNN.parquet` (concatenating them into one file took a gigabyte more memory
+   * in DuckDB, which defeats the streaming).
+   */
   async finish(): Promise<OutputFile[]> {
     await this.flush();
-    return this.files;
+    const single = path.join(this.runDir, `${this.table}.parquet`);
+    if (this.files.length === 0) {
+      await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS INTEGER) AS cohort, CAST(NULL AS INTEGER) AS year, CAST(NULL AS DOUBLE) AS inflow,
+          CAST(NULL AS DOUBLE) AS outflow, CAST(NULL AS DOUBLE) AS stock, ${lit(this.unit)} AS unit FROM ${ident(this.sidTable)} m WHERE FALSE)
+        TO ${lit(single)} (FORMAT parquet, COMPRESSION zstd)`);
+      rmSync(this.outDir, { recursive: true, force: true });
+      return [{ table: this.table, file: path.relative(this.runDir, single), rows: 0, bytes: statSync(single).size, sha256: sha256(single) }];
+    }
+    if (this.files.length === 1) {
+      renameSync(path.join(this.runDir, this.files[0]!.file), single);
+      rmSync(this.outDir, { recursive: true, force: true });
+      return [{ ...this.files[0]!, file: path.relative(this.runDir, single) }];
+    }
+    const folder = path.join(this.runDir, this.table);
+    renameSync(this.outDir, folder);
+    return this.files.map((f) => ({ ...f, file: path.join(this.table, path.basename(f.file)) }));
   }
 }

@@ -285,7 +285,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
   let done = 0;
   const byCohortName = `${o.id}_by_cohort`;
   const bcw = o.by_cohort
-    ? new ByCohortWriter(s, byCohortName, path.join(ctx.outputDir, byCohortName), ctx.outputDir, o.keys.map((k) => `m.${ident(k)}`).join(", "), `__${o.id}_sid`, y0, unit, T, n)
+    ? new ByCohortWriter(s, byCohortName, path.join(ctx.outputDir, `.${byCohortName}.parts`), ctx.outputDir, o.keys.map((k) => `m.${ident(k)}`).join(", "), `__${o.id}_sid`, y0, unit, T, n)
     : null;
   // Prepare every group, then run the models: on the worker pool when the work is large.
   const prepared = [...groups.values()].map((g) => {
