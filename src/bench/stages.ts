@@ -157,7 +157,7 @@ export async function handoffStage(values: number, runs: number): Promise<StageR
   await s.run(`CREATE TABLE src AS SELECT CAST(i AS DOUBLE) * 0.5 AS v FROM range(${values}) t(i)`);
   let check = 0;
   const readT = await timed(runs, async () => {
-    const r = await readColumns(s, "SELECT v FROM src", ["f64"], values);
+    const r = await readColumns(s, "SELECT v FROM src", ["f64"]);
     check = (r.columns[0] as Float64Array)[values - 1]!;
   }, (i, t) => say(`hand-off read run ${i}/${runs}: ${t.toFixed(2)} s`));
   if (check !== (values - 1) * 0.5) throw new Error("hand-off read mismatch");

@@ -29,7 +29,7 @@ function allValid(vec: duckdb.Vector, n: number): boolean {
  * Runs `sql` and returns its columns as typed arrays (DOUBLE → Float64Array, INTEGER →
  * Int32Array, in that order of `kinds`). NULLs are refused: filter or coalesce them first.
  */
-export async function readColumns(s: Session, sql: string, kinds: readonly ColumnKind[], expectedRows = 0): Promise<{ rows: number; columns: (Float64Array | Int32Array)[] }> {
+export async function readColumns(s: Session, sql: string, kinds: readonly ColumnKind[]): Promise<{ rows: number; columns: (Float64Array | Int32Array)[] }> {
   const res = await s.conn.run(sql);
   const types = res.columnTypes();
   kinds.forEach((k, j) => {
@@ -45,7 +45,6 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
     chunks.push(ch);
     rows += duckdb.data_chunk_get_size(ch);
   }
-  void expectedRows;
   const cols = kinds.map((k) => (k === "f64" ? new Float64Array(rows) : new Int32Array(rows)));
   let off = 0;
   for (const ch of chunks) {

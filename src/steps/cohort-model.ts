@@ -46,20 +46,18 @@ interface SeriesInfo {
   keyValues: string[][];
 }
 
-async function seriesIndex(s: Session, o: O, T: number, y0: number): Promise<SeriesInfo> {
+async function seriesIndex(s: Session, o: O): Promise<SeriesInfo> {
   const k = idents(o.keys);
   await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(`__${o.id}_sid`)} AS
     SELECT CAST(row_number() OVER (ORDER BY ${k}) - 1 AS INTEGER) AS sid, ${k} FROM (SELECT DISTINCT ${k} FROM ${ident(o.input)})`);
   const rows = await s.all(`SELECT ${o.keys.map((c) => `CAST(${ident(c)} AS VARCHAR) AS ${ident(c)}`).join(", ")} FROM ${ident(`__${o.id}_sid`)} ORDER BY sid`);
-  void T;
-  void y0;
   return { n: rows.length, keyValues: rows.map((r) => o.keys.map((c) => String(r[c]))) };
 }
 
 async function readMatrix(s: Session, table: string, o: O, valueExpr: string, where: string, n: number, T: number, y0: number): Promise<{ m: Float64Array; present: Uint8Array }> {
   const { rows, columns } = await readColumns(s,
     `SELECT m.sid, CAST(i.year - ${y0} AS INTEGER) AS yi, CAST(${valueExpr} AS DOUBLE) AS v
-     FROM ${ident(table)} i JOIN ${ident(`__${o.id}_sid`)} m USING (${idents(o.keys)}) ${where}`, ["i32", "i32", "f64"], n * T);
+     FROM ${ident(table)} i JOIN ${ident(`__${o.id}_sid`)} m USING (${idents(o.keys)}) ${where}`, ["i32", "i32", "f64"]);
   const [sid, yi, v] = columns as [Int32Array, Int32Array, Float64Array];
   const m = new Float64Array(n * T);
   const present = new Uint8Array(n * T);
@@ -133,7 +131,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
   const y0 = Number(span.y0);
   const y1 = Number(span.y1);
   const T = y1 - y0 + 1;
-  const ser = await seriesIndex(s, o, T, y0);
+  const ser = await seriesIndex(s, o);
   const n = ser.n;
   ctx.progress.info(`step ${o.id}: ${n} series × ${T} years (${y0}–${y1}), ${o.mode}`);
   const { m: value, present } = await readMatrix(s, o.input, o, ident(o.value), "", n, T, y0);
@@ -365,9 +363,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
           }
         });
       });
-      if (init) {
-        // The initial stock's material content: that of the cohort before the first model year (documented assumption).
-      }
+      // The initial stock carries no material content (documented): only model cohorts are composed.
       const rm = composition(group, r.inflow, gn, content, M, null);
       const rsum = composition(group, r.inflow, gn, total, 1, null);
       g.sids.forEach((sid, j) => {
@@ -453,13 +449,20 @@ async function runCohortModel(ctx: StepContext, o: O) {
       });
     }
   } else {
-    await ctx.audits.check({
-      step: o.id, check: "negative-inflow", severity: a.negative_severity,
-      items: `SELECT ${keyMap(o.keys)} AS keys, year, inflow AS observed, 0.0 AS expected, 0.0 AS tolerance,
-        ${o.negative_inflow === "clamp" ? `'inflow clamped to 0; unmet stock change ' || unmet_stock_change` : `'negative inflow ' || inflow || ' needed to follow the falling stock path (kept; negative_inflow = true)'`} AS message FROM ${ident(o.id)}`,
-      failWhen: o.negative_inflow === "clamp" ? "abs(observed) = 0 AND message NOT LIKE '%change 0.0'" : "observed < 0",
-      failMessage: "negative inflow",
-    });
+    await ctx.audits.check(o.negative_inflow === "clamp"
+      ? {
+          step: o.id, check: "negative-inflow", severity: a.negative_severity,
+          items: `SELECT ${keyMap(o.keys)} AS keys, year, unmet_stock_change AS observed, 0.0 AS expected, ${a.balance_atol} AS tolerance,
+            'inflow clamped to 0: the stock stays ' || (-unmet_stock_change) || ' above its path (unmet stock change ' || unmet_stock_change || ')' AS message FROM ${ident(o.id)}`,
+          failMessage: "negative inflow clamped",
+        }
+      : {
+          step: o.id, check: "negative-inflow", severity: a.negative_severity,
+          items: `SELECT ${keyMap(o.keys)} AS keys, year, inflow AS observed, 0.0 AS expected, 0.0 AS tolerance,
+            'negative inflow ' || inflow || ' needed to follow the falling stock path (kept; negative_inflow = true)' AS message FROM ${ident(o.id)}`,
+          failWhen: "observed < 0",
+          failMessage: "negative inflow",
+        });
     if (!hasInit) {
       await ctx.audits.check({
         step: o.id, check: "first-year-spike", severity: "warning",

@@ -4,7 +4,6 @@ import path from "node:path";
 import { loadPipeline } from "../../src/spec/load.js";
 import { runPipeline } from "../../src/run/runner.js";
 import { Session } from "../../src/engine/session.js";
-import { DataError } from "../../src/errors.js";
 import { BASIC_SOURCES, cli, tmp, write } from "../helpers.js";
 
 const PIPE = (extra = "") => `name: t\nyears: { first: 2000, last: 2010 }\n${extra}${BASIC_SOURCES}
@@ -192,7 +191,6 @@ describe("bad input data ends in rejects or clear errors", () => {
   });
 });
 
-void DataError;
 
 describe("Parquet sources", () => {
   it("clean files are used as they are; bad rows and duplicate keys are rejected with their row number", async () => {

@@ -215,3 +215,29 @@ steps:
     for (const f of ["m.parquet", "back.parquet", "audit.parquet"]) expect(sha(path.join(dir, "b", f)), f).toBe(sha(path.join(dir, "a", f)));
   });
 });
+
+describe("stock-driven with clamp", () => {
+  it("clamps negative inflow to 0, reports the unmet stock change and audits each clamped year", async () => {
+    const dir = tmp();
+    const years = Array.from({ length: 12 }, (_, i) => 2000 + i);
+    write(dir, {
+      "p.yaml": `name: t\n${SOURCES}\nsteps:\n  - id: m\n    kind: cohort-model\n    mode: stock-driven\n    input: inflow\n    keys: [region, product]\n    lifetimes: lifetimes\n    negative_inflow: clamp\n`,
+      "inflow.csv": inflowCsv([["A", "cars"]], years, (_s, y) => (y < 2005 ? 100 : 40)),
+      "lifetimes.csv": "region,product,first_cohort,last_cohort,distribution,mean,sd,shape,scale\n,cars,,,fixed,30,,,\n",
+    });
+    const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "o") });
+    expect(r.status, r.error).toBe("ok");
+    const s = await Session.open();
+    const rows = await s.all(`SELECT year, inflow, stock, stock_target, unmet_stock_change FROM '${dir}/o/m.parquet' ORDER BY year`);
+    const audit = await s.all(`SELECT year, observed FROM '${dir}/o/audit.parquet' WHERE "check" = 'negative-inflow' AND status = 'fail' ORDER BY year`);
+    s.close();
+    // A fixed 30-year lifetime: nothing leaves, so the stock cannot fall; every year from 2005 is clamped.
+    expect(rows[0]).toMatchObject({ year: 2000, inflow: 100, stock: 100 });
+    for (const row of rows.slice(5)) {
+      expect(row.inflow).toBe(0);
+      expect(row.stock).toBe(100);
+      expect(row.unmet_stock_change).toBe(-60);
+    }
+    expect(audit.map((x) => x.year)).toEqual(years.slice(5));
+  });
+});
