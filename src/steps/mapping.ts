@@ -83,10 +83,6 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
            WHEN ${isPiece} AND u.unit_mass IS NULL THEN 'counted in pieces but the concordance gives no unit_mass' END AS reason
     FROM ${ident(r.input)} i LEFT JOIN ${um} u ON u.commodity = CAST(i.commodity AS VARCHAR)`);
 
-  await s.run(`CREATE OR REPLACE TABLE ${ident(r.unmapped)} AS
-    SELECT ${gl("")}commodity, year, ${r.values.map((v) => `CASE WHEN __nomass THEN ${ident("__orig_" + v)} ELSE ${ident(v)} END AS ${ident(v)}`).join(", ")},
-      CASE WHEN __nomass THEN 'piece' ELSE ${base} END AS unit, reason
-    FROM ${massed} WHERE reason IS NOT NULL ORDER BY ${idents([...g, "commodity", "year"])}`);
   const outKeys = r.outputKeys ?? [...g, "product", "material"];
   // When the output keeps the group keys, the mass distributed by the shares is summed in the
   // same pass (hidden columns), so the conservation audit needs no second join.
@@ -104,14 +100,22 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   const cons = ident(`__cons_${r.step}`);
   const keyCols = [...g, "year"];
   await s.run(`CREATE OR REPLACE TABLE ${cons} AS
-    WITH inp AS (SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(`coalesce(${ident(v)}, 0)`)} AS ${ident("in_" + v)}, ${exactSum(`CASE WHEN reason IS NOT NULL THEN coalesce(${ident(v)}, 0) ELSE 0 END`)} AS ${ident("un_" + v)}`).join(", ")}
-        FROM ${massed} WHERE NOT __nomass GROUP BY ALL),
+    WITH inp AS (SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(`CASE WHEN NOT __nomass THEN coalesce(${ident(v)}, 0) ELSE 0 END`)} AS ${ident("in_" + v)}, ${exactSum(`CASE WHEN reason IS NOT NULL AND NOT __nomass THEN coalesce(${ident(v)}, 0) ELSE 0 END`)} AS ${ident("un_" + v)}`).join(", ")},
+          count(*) FILTER (WHERE reason IS NOT NULL) AS __unmapped_rows
+        FROM ${massed} GROUP BY ALL),
       dist AS (${inPass
         ? `SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(ident("__dist_" + v))} AS ${ident("out_" + v)}`).join(", ")} FROM ${ident(r.output)} GROUP BY ALL`
         : `SELECT ${gl("m.")}m.year, ${r.values.map((v) => `${exactSum(`coalesce(m.${ident(v)}, 0) * c.share`)} AS ${ident("out_" + v)}`).join(", ")}
         FROM ${massed} m JOIN ${conc} c ON c.commodity = m.commodity WHERE m.reason IS NULL GROUP BY ALL`})
     SELECT * FROM inp LEFT JOIN dist USING (${idents(keyCols)})`);
   if (inPass) for (const v of r.values) await s.run(`ALTER TABLE ${ident(r.output)} DROP COLUMN ${ident("__dist_" + v)}`);
+  // Unmapped rows, kept with their mass; the input is scanned for them only when there are any.
+  const anyUnmapped = Number(await s.scalar(`SELECT coalesce(sum(__unmapped_rows), 0) FROM ${cons}`)) > 0;
+  await s.run(`CREATE OR REPLACE TABLE ${ident(r.unmapped)} AS
+    SELECT ${gl("")}commodity, year, ${r.values.map((v) => `CASE WHEN __nomass THEN ${ident("__orig_" + v)} ELSE ${ident(v)} END AS ${ident(v)}`).join(", ")},
+      CASE WHEN __nomass THEN 'piece' ELSE ${base} END AS unit, reason
+    FROM ${massed} WHERE ${anyUnmapped ? "reason IS NOT NULL" : "FALSE"} ORDER BY ${idents([...g, "commodity", "year"])}`);
+
   for (const v of r.values) {
     await ctx.audits.check({
       step: r.step, check: `concordance-conservation:${v}`, severity: "error",
