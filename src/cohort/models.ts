@@ -128,14 +128,9 @@ export interface InitialContribution {
   tooOld: Float64Array; // n
 }
 
-export function initialContribution(init: InitialStock, n: number, T: number): InitialContribution {
+/** Per unit of each initial age a: the share left at the end of year index t, σ(a + t + 1)/σ(a) (0 when σ(a) = 0). */
+function initialUnits(init: InitialStock, T: number): { unit: Float64Array; live: Uint8Array; steady: Float64Array | null } {
   const { A, curves } = init;
-  const stock0 = new Float64Array(n);
-  const stock = new Float64Array(n * T);
-  const ageSum = new Float64Array(n * T);
-  const outAgeSum = new Float64Array(n * T);
-  const tooOld = new Float64Array(n);
-  // Per unit of each age: survival to the end of year index t is σ(a + t + 1) / σ(a).
   const unit = new Float64Array(A * T);
   const live = new Uint8Array(A);
   for (let a = 0; a < A; a++) {
@@ -153,6 +148,50 @@ export function initialContribution(init: InitialStock, n: number, T: number): I
     for (let a = 0; a < A; a++) tot += steady[a] = sigmaAt(curves[a]!.lifetime, a);
     for (let a = 0; a < A; a++) steady[a]! /= tot;
   }
+  return { unit, live, steady };
+}
+
+/**
+ * The initial stock's cohorts, one series at a time: for each age a with stock, rows for every
+ * model year (cohort index −1 − a), with the stock left and the outflow of that year.
+ */
+export function* initialCohorts(init: InitialStock, n: number, T: number): Generator<{ s: number; cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array }> {
+  const { A } = init;
+  const { unit, live, steady } = initialUnits(init, T);
+  for (let s = 0; s < n; s++) {
+    const ages: number[] = [];
+    for (let a = 0; a < A; a++) {
+      const q = init.byAge ? init.byAge[s * A + a]! : steady![a]! * init.total[s]!;
+      if (q !== 0) ages.push(a);
+    }
+    const rows = ages.length * T;
+    const cohort = new Int32Array(rows), year = new Int32Array(rows);
+    const stock = new Float64Array(rows), outflow = new Float64Array(rows), inflow = new Float64Array(rows);
+    let k = 0;
+    for (const a of ages) {
+      const q = init.byAge ? init.byAge[s * A + a]! : steady![a]! * init.total[s]!;
+      let prev = q;
+      for (let t = 0; t < T; t++) {
+        const v = live[a] ? q * unit[a * T + t]! : 0;
+        cohort[k] = -1 - a;
+        year[k] = t;
+        stock[k] = v;
+        outflow[k++] = prev - v;
+        prev = v;
+      }
+    }
+    yield { s, cohort, year, stock, outflow, inflow };
+  }
+}
+
+export function initialContribution(init: InitialStock, n: number, T: number): InitialContribution {
+  const { A } = init;
+  const stock0 = new Float64Array(n);
+  const stock = new Float64Array(n * T);
+  const ageSum = new Float64Array(n * T);
+  const outAgeSum = new Float64Array(n * T);
+  const tooOld = new Float64Array(n);
+  const { unit, live, steady } = initialUnits(init, T);
   const shares = new Float64Array(A);
   for (let s = 0; s < n; s++) {
     if (init.byAge) for (let a = 0; a < A; a++) shares[a] = init.byAge[s * A + a]!;

@@ -11,7 +11,7 @@ import { ident, idents, keyMap, lit } from "../engine/sql.js";
 import { readColumns, writeColumns, type OutColumn } from "../engine/handoff.js";
 import {
   ALL_PARAMS, CohortGroup, composition, curveOf, DISTRIBUTION_NAMES, initialContribution, inflowDriven, makeLifetime,
-  stockDriven, ageHorizon, byCohort, type Curve, type InitialContribution, type ModelResult,
+  stockDriven, ageHorizon, byCohort, initialCohorts, type Curve, type InitialContribution, type InitialStock, type ModelResult,
 } from "../cohort/index.js";
 import { defineStep, type StepContext } from "./types.js";
 import { candidates, describeSeries, pick, type MatchRow } from "./cohort-match.js";
@@ -274,8 +274,6 @@ async function runCohortModel(ctx: StepContext, o: O) {
     meanAgeStock: new Float64Array(n * T).fill(NaN), meanAgeOutflow: new Float64Array(n * T).fill(NaN),
     unmet: o.mode === "stock-driven" && o.negative_inflow === "clamp" ? new Float64Array(n * T) : null,
     tooOld: new Float64Array(n),
-    initStock: new Float64Array(n * T),
-    initOut: new Float64Array(n * T),
   };
   const mat = M ? { inflow: new Float64Array(n * M * T), outflow: new Float64Array(n * M * T), stock: new Float64Array(n * M * T), sumCheck: new Float64Array(n * T) } : null;
   const hasContent = new Uint8Array(n);
@@ -295,24 +293,17 @@ async function runCohortModel(ctx: StepContext, o: O) {
       return x;
     };
     let init: InitialContribution | null = null;
+    let initSpec: InitialStock | null = null;
     if (g.initCurves.length) {
-      init = initialContribution({ byAge: initByAge ? gather(initByAge, A) : null, total: initTotal ? gatherVec(initTotal, g.sids) : new Float64Array(gn), A, curves: g.initCurves }, gn, T);
-      g.sids.forEach((sid, j) => {
-        let prev = init!.stock0[j]!;
-        for (let t = 0; t < T; t++) {
-          const x = init!.stock[j * T + t]!;
-          out.initStock[sid * T + t] = x;
-          out.initOut[sid * T + t] = prev - x;
-          prev = x;
-        }
-      });
+      initSpec = { byAge: initByAge ? gather(initByAge, A) : null, total: initTotal ? gatherVec(initTotal, g.sids) : new Float64Array(gn), A, curves: g.initCurves };
+      init = initialContribution(initSpec, gn, T);
     }
     if (o.mode === "stock-driven") {
       for (let c = 0; c < T; c++) {
         if (!(group.S[c * T + c]! > 0)) throw new DataError(`step ${o.id}: series ${describeSeries(o.keys, ser.keyValues[g.sids[0]!]!)}, cohort ${y0 + c}: σ(0) = 0 (everything leaves in the year of entry), so no inflow can build a stock`);
       }
     }
-    return { g, group, gn, init, v: gather(value, T) };
+    return { g, group, gn, init, initSpec, v: gather(value, T) };
   });
   const cells = n * T * (T + 1) / 2;
   const usePool = cells >= POOL_MIN_CELLS && CohortPool.shared().size > 1;
@@ -326,7 +317,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
     : [];
   if (usePool) ctx.progress.info(`step ${o.id}: ${prepared.length} lifetime groups on ${CohortPool.shared().size} worker threads`);
   for (const [gi, x] of prepared.entries()) {
-    const { g, group, gn, init } = x;
+    const { g, group, gn } = x;
     const scatter = (dst: Float64Array, src: Float64Array, width: number) => {
       g.sids.forEach((sid, j) => dst.set(src.subarray(j * width, j * width + width), sid * width));
     };
@@ -378,6 +369,10 @@ async function runCohortModel(ctx: StepContext, o: O) {
       });
     }
     if (bcw) {
+      // The initial stock's cohorts (entered before the first model year), then the model cohorts.
+      if (x.initSpec) for (const chunk of initialCohorts(x.initSpec, gn, T)) {
+        await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
+      }
       for (const chunk of byCohort(group, r.inflow, gn)) {
         await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
       }
@@ -399,7 +394,6 @@ async function runCohortModel(ctx: StepContext, o: O) {
     { name: "stock", kind: "f64", data: out.stock }, { name: "stock_change", kind: "f64", data: out.stockChange },
     { name: "mean_age_stock", kind: "f64", data: out.meanAgeStock }, { name: "mean_age_outflow", kind: "f64", data: out.meanAgeOutflow },
     { name: "given", kind: "f64", data: value },
-    { name: "init_stock", kind: "f64", data: out.initStock }, { name: "init_out", kind: "f64", data: out.initOut },
     ...(out.unmet ? [{ name: "unmet_stock_change", kind: "f64" as const, data: out.unmet }] : []),
   ];
   const raw = `__${o.id}_raw`;
@@ -582,9 +576,9 @@ async function runCohortModel(ctx: StepContext, o: O) {
       { name: "st", kind: "f64", data: bcw.sumStock }, { name: "ou", kind: "f64", data: bcw.sumOutflow }], n * T);
     await ctx.audits.check({
       step: o.id, check: "by-cohort-total", severity: "error",
-      items: `SELECT ${keyMap(o.keys, "m")} AS keys, r.yi + ${y0} AS year, c.st + c.ou AS observed, r.stock - r.init_stock + r.outflow - r.init_out AS expected,
+      items: `SELECT ${keyMap(o.keys, "m")} AS keys, r.yi + ${y0} AS year, c.st + c.ou AS observed, r.stock + r.outflow AS expected,
           ${a.balance_rtol} * greatest(abs(r.stock), abs(r.outflow)) + ${a.balance_atol} AS tolerance,
-          'cohort-resolved stock and outflow (model cohorts) do not add up to the totals less the initial stock''s part' AS message
+          'cohort-resolved stock and outflow do not add up to the totals' AS message
         FROM ${ident(raw)} r JOIN ${ident(sums)} c USING (sid, yi) JOIN ${sidT} m USING (sid)`,
       failMessage: "cohort-resolved totals differ",
     });
