@@ -336,7 +336,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   // CSV structural errors (too many / missing columns, bad quoting), found by DuckDB's reader.
   if (csvBad > 0) {
     await s.run(`INSERT INTO ${REJECTS_TABLE}
-      SELECT ${lit(name)}, sc.file_path, e.line - ${lineOffset}, e.line, coalesce(e.column_name, ''), e.csv_line,
+      SELECT ${lit(name)}, sc.file_path, e.line - ${lineOffset}, e.line, coalesce(e.column_name, '(whole line)'), e.csv_line,
         e.error_type || ': ' || e.error_message
       FROM ${ident(csvRejT)} e JOIN ${ident(csvScanT)} sc USING (scan_id, file_id)
       QUALIFY row_number() OVER (PARTITION BY sc.file_path, e.line ORDER BY e.column_idx) = 1
