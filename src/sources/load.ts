@@ -224,13 +224,13 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   let checkedT = `__checked_${name}`;
   const checkedView = `__checkedv_${name}`;
 
+  const names = format === "csv" && !header ? `, names = [${Object.keys(src.columns).map(lit).join(", ")}]` : "";
   const fromExpr = async (numbered: boolean): Promise<{ from: string; types: Map<string, string> }> => {
     let from: string;
     if (format === "csv") {
-      const names = header ? "" : `, names = [${Object.keys(src.columns).map(lit).join(", ")}]`;
       from = readExpr(src, files, "csv", `, store_rejects = true, rejects_table = ${lit(csvRejT)}, rejects_scan = ${lit(csvScanT)}${names}${numbered ? ", parallel = false" : ""}`);
     } else from = readExpr(src, files, "parquet");
-    const desc = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format, format === "csv" ? ", ignore_errors = true" : "")}`);
+    const desc = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format, format === "csv" ? `, ignore_errors = true${names}` : "")}`);
     const types = new Map<string, string>();
     const parts: string[] = [];
     for (const d of desc) {
