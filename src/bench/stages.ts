@@ -10,6 +10,7 @@ import { readColumns, writeColumns } from "../engine/handoff.js";
 import { CohortGroup, curveOf, makeLifetime } from "../cohort/index.js";
 import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
 import { mulberry32 } from "../data/prng.js";
+import { Progress } from "../run/progress.js";
 
 export const SIZES = { S: 1e6, M: 1e7, L: 1e8 } as const;
 export type Size = keyof typeof SIZES;
@@ -82,7 +83,7 @@ export async function tableStage(cacheRoot: string, size: Size, runs: number, me
   mkdirSync(runDir, { recursive: true });
   let audit = { errors: -1, warnings: -1 };
   const ours = await timed(runs, async () => {
-    const r = await runPipeline(loadPipeline(path.join(dir, "pipeline.yaml")), { out: path.join(runDir, `table-${size}`), replace: true, memoryLimit });
+    const r = await runPipeline(loadPipeline(path.join(dir, "pipeline.yaml")), { out: path.join(runDir, `table-${size}`), replace: true, memoryLimit, progress: new Progress(true) });
     if (r.status !== "ok") throw new Error(`bench pipeline failed: ${r.error}`);
     audit = { errors: r.audit!.errors, warnings: r.audit!.warnings };
   }, (i, t) => say(`table stage (cairn) run ${i}/${runs}: ${t.toFixed(2)} s`));
@@ -201,7 +202,7 @@ steps:
     indicators: false
 `);
   const t0 = performance.now();
-  const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "run"), replace: true, memoryLimit });
+  const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "run"), replace: true, memoryLimit, progress: new Progress(true) });
   const t = (performance.now() - t0) / 1000;
   if (r.status !== "ok") throw new Error(`by-cohort run failed: ${r.error}`);
   const rows = r.outputs.filter((o) => o.table === "m_by_cohort").reduce((a, o) => a + o.rows, 0);

@@ -19,7 +19,9 @@ export class Progress {
       const now = Date.now();
       if (now - last < 500 && done < total) return;
       last = now;
-      process.stderr.write(`\r${label}: ${done}/${total} (${((100 * done) / Math.max(total, 1)).toFixed(0)} %)${done >= total ? "\n" : ""}`);
+      const line = `${label}: ${done}/${total} (${((100 * done) / Math.max(total, 1)).toFixed(0)} %)`;
+      // On a terminal the counter rewrites its line; elsewhere each report is a line of its own.
+      process.stderr.write(process.stderr.isTTY ? `\r${line}${done >= total ? "\n" : ""}` : `${line}\n`);
     };
   }
 }

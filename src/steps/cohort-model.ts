@@ -375,6 +375,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
       }
       for (const chunk of byCohort(group, r.inflow, gn)) {
         await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
+        tick(done + chunk.s + 1);
       }
     }
     done += gn;
