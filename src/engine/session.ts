@@ -67,13 +67,6 @@ export class Session {
     return Object.values(r)[0] as T;
   }
 
-  async tableExists(name: string): Promise<boolean> {
-    const n = await this.scalar<number>(
-      `SELECT count(*) FROM duckdb_tables() WHERE table_name = '${name.replace(/'/g, "''")}' AND temporary = false UNION ALL SELECT 0 LIMIT 1`,
-    );
-    return n > 0;
-  }
-
   async columns(table: string): Promise<{ name: string; type: string }[]> {
     const rows = await this.all(`DESCRIBE ${'"' + table.replace(/"/g, '""') + '"'}`);
     return rows.map((r) => ({ name: String(r.column_name), type: String(r.column_type) }));
