@@ -54,10 +54,10 @@ async function seriesIndex(s: Session, o: O): Promise<SeriesInfo> {
   return { n: rows.length, keyValues: rows.map((r) => o.keys.map((c) => String(r[c]))) };
 }
 
-async function readMatrix(s: Session, table: string, o: O, valueExpr: string, where: string, n: number, T: number, y0: number): Promise<{ m: Float64Array; present: Uint8Array }> {
+async function readMatrix(s: Session, table: string, o: O, valueExpr: string, n: number, T: number, y0: number): Promise<{ m: Float64Array; present: Uint8Array }> {
   const { rows, columns } = await readColumns(s,
     `SELECT m.sid, CAST(i.year - ${y0} AS INTEGER) AS yi, CAST(${valueExpr} AS DOUBLE) AS v
-     FROM ${ident(table)} i JOIN ${ident(`__${o.id}_sid`)} m USING (${idents(o.keys)}) ${where}`, ["i32", "i32", "f64"]);
+     FROM ${ident(table)} i JOIN ${ident(`__${o.id}_sid`)} m USING (${idents(o.keys)})`, ["i32", "i32", "f64"]);
   const [sid, yi, v] = columns as [Int32Array, Int32Array, Float64Array];
   const m = new Float64Array(n * T);
   const present = new Uint8Array(n * T);
@@ -134,7 +134,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
   const ser = await seriesIndex(s, o);
   const n = ser.n;
   ctx.progress.info(`step ${o.id}: ${n} series × ${T} years (${y0}–${y1}), ${o.mode}`);
-  const { m: value, present } = await readMatrix(s, o.input, o, ident(o.value), "", n, T, y0);
+  const { m: value, present } = await readMatrix(s, o.input, o, ident(o.value), n, T, y0);
 
   // Coverage: missing series-years.
   const missingSY: number[] = [];

@@ -85,17 +85,9 @@ export function wasmProduct(inp: Float64Array, n: number, T: number, M: Float64A
     const m = Math.min(block, n - s0);
     const np = pad4(m);
     f = new Float64Array(k.mem.buffer);
-    const ib = iOff / 8;
-    if (T === tp) f.set(inp.subarray(s0 * T, (s0 + m) * T), ib);
-    else for (let s = 0; s < m; s++) f.set(inp.subarray((s0 + s) * T, (s0 + s) * T + T), ib + s * tp);
-    if (T !== tp || np !== m) {
-      for (let s = 0; s < m; s++) f.fill(0, ib + s * tp + T, ib + (s + 1) * tp);
-      f.fill(0, ib + m * tp, ib + np * tp);
-    }
+    putRows(f, inp, s0, m, np, T, tp, iOff / 8);
     k.product(iOff, 0, oOff, np, tp);
-    const ob = oOff / 8;
-    if (T === tp) out.set(f.subarray(ob, ob + m * T), s0 * T);
-    else for (let s = 0; s < m; s++) out.set(f.subarray(ob + s * tp, ob + s * tp + T), (s0 + s) * T);
+    getRows(f, out, s0, m, T, tp, oOff / 8);
   }
 }
 
