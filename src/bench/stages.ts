@@ -7,8 +7,9 @@ import { runPipeline } from "../run/runner.js";
 import { Session } from "../engine/session.js";
 import { lit } from "../engine/sql.js";
 import { readColumns, writeColumns } from "../engine/handoff.js";
-import { CohortGroup, curveOf, makeLifetime } from "../cohort/index.js";
+import { CohortGroup, curveOf, makeLifetime, type ModelResult } from "../cohort/index.js";
 import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
+import { KernelArena } from "../cohort/arena.js";
 import { mulberry32 } from "../data/prng.js";
 import { Progress } from "../run/progress.js";
 
@@ -99,7 +100,9 @@ export async function tableStage(cacheRoot: string, size: Size, runs: number, me
 /** The cohort workload: S series × Y years, G lifetime groups (normal, means 20..50, sd 30 %). */
 export function cohortWorkload(series: number, years: number, groups: number, seed = 7) {
   const rnd = mulberry32(seed);
-  const inflow = new Float64Array(series * years);
+  // The inputs are made in the cohort arena, where the workers read them in place (as a caller
+  // holding its data there would); an input elsewhere is copied in once per run.
+  const inflow = KernelArena.shared().alloc(series * years);
   for (let i = 0; i < inflow.length; i++) inflow[i] = 1 + 99 * rnd();
   const per = Math.ceil(series / groups);
   const gs: { group: CohortGroup; from: number; n: number }[] = [];
@@ -117,32 +120,38 @@ export function cohortWorkload(series: number, years: number, groups: number, se
 export async function cohortStage(series: number, years: number, groups: number, runs: number): Promise<StageResult> {
   const w = cohortWorkload(series, years, groups);
   const cells = series * years * (years + 1) / 2;
-  const stocks = new Float64Array(series * years);
   const pool = CohortPool.shared();
   const slices = w.groups.map((g) => w.inflow.subarray(g.from * years, (g.from + g.n) * years));
+  // Each run's results go back to the arena before the next; the last run's are kept for checks.
+  let last: ModelResult[] = [];
   const inflowT = await timed(runs, async () => {
-    const rs = await runTasks(w.groups.map((g, i) => taskFor("inflow", g.group, slices[i]!, g.n)), pool);
-    rs.forEach((r, i) => stocks.set(r.stock, w.groups[i]!.from * years));
-    recycle(...rs.map((r) => ({ outflow: r.outflow, stock: r.stock, stockChange: r.stockChange, inflow: r.inflow === slices[0] ? undefined : r.inflow })));
+    recycle(...last.map((r) => ({ outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+    last = await runTasks(w.groups.map((g, i) => taskFor("inflow", g.group, slices[i]!, g.n)), pool);
   }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`));
-  let maxErr = 0;
+  const fromInflow = last;
+  last = [];
   const stockT = await timed(runs, async () => {
-    const rs = await runTasks(w.groups.map((g) => taskFor("stock", g.group, stocks.subarray(g.from * years, (g.from + g.n) * years), g.n)), pool);
-    rs.forEach((r, gi) => {
-      const g = w.groups[gi]!;
-      for (let i = 0; i < r.inflow.length; i += 997) maxErr = Math.max(maxErr, Math.abs(r.inflow[i]! - w.inflow[g.from * years + i]!) / w.inflow[g.from * years + i]!);
-    });
-    recycle(...rs.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+    recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+    last = await runTasks(w.groups.map((g, gi) => taskFor("stock", g.group, fromInflow[gi]!.stock, g.n)), pool);
   }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
+  // The stock-driven model on the inflow-driven stock must give the inflow back.
+  let maxErr = 0;
+  last.forEach((r, gi) => {
+    const g = w.groups[gi]!;
+    for (let i = 0; i < r.inflow.length; i += 997) maxErr = Math.max(maxErr, Math.abs(r.inflow[i]! - w.inflow[g.from * years + i]!) / w.inflow[g.from * years + i]!);
+  });
+  recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+  recycle(...fromInflow.map((r) => ({ outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+  last = [];
   const M = 3;
   const contents = w.groups.map((g) => {
-    const content = new Float64Array(g.n * M * years);
+    const content = KernelArena.shared().alloc(g.n * M * years);
     for (let s = 0; s < g.n; s++) for (let m = 0; m < M; m++) for (let c = 0; c < years; c++) content[(s * M + m) * years + c] = (m + 1) * 0.1 + (c < years / 2 ? 0 : 0.05);
     return content;
   });
   const compT = await timed(runs, async () => {
-    const rs = await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
-    recycle(...rs.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+    recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
+    last = await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
   }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`));
   await CohortPool.closeShared();
   return {

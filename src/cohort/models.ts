@@ -45,9 +45,9 @@ export class CohortGroup {
   private rate: number | null | undefined;
 
   /** A group from its matrices (as sent to a worker thread). */
-  static fromMatrices(T: number, S: Float64Array, P: Float64Array, rate: number | null): CohortGroup {
+  static fromMatrices(T: number, S: Float64Array, P: Float64Array, rate: number | null, St?: Float64Array): CohortGroup {
     const g = Object.create(CohortGroup.prototype) as CohortGroup;
-    Object.assign(g, { T, curves: [], S, P, rate });
+    Object.assign(g, { T, curves: [], S, P, rate, St });
     return g;
   }
 

@@ -1,10 +1,11 @@
 /**
  * Worker threads for the cohort kernels: groups (or parts of groups) of series run on every
- * core. Each task carries its group's survival and leaving matrices, so a worker needs nothing
- * else; results come back as transferred typed arrays.
+ * core. Inputs, results and each group's matrices live in the shared cohort arena
+ * (./arena.ts), so a task message carries only offsets and the workers compute in place.
  */
 import { availableParallelism } from "node:os";
 import { Worker } from "node:worker_threads";
+import { KernelArena } from "./arena.js";
 import type { CohortGroup, InitialContribution, ModelResult } from "./models.js";
 
 export type TaskKind = "inflow" | "stock" | "composition";
@@ -15,6 +16,8 @@ export interface CohortTask {
   n: number;
   S: Float64Array;
   P: Float64Array;
+  /** Stock-driven: the transposed survival matrix (row = year, column = cohort). */
+  St?: Float64Array;
   rate: number | null;
   /** n × T inflow (inflow, composition) or target stock (stock). */
   values: Float64Array;
@@ -24,12 +27,39 @@ export interface CohortTask {
   /** composition: (n·M) × T content and M. */
   content?: Float64Array;
   M?: number;
-  /** Result arrays allocated by the caller and moved to the worker (it allocates none). */
-  out?: { inflow?: Float64Array; outflow: Float64Array; stock: Float64Array; stockChange: Float64Array };
 }
 
 export function taskFor(kind: TaskKind, g: CohortGroup, values: Float64Array, n: number, extra: Partial<CohortTask> = {}): CohortTask {
-  return { kind, T: g.T, n, S: g.S, P: g.P, rate: g.exponentialRate, values, ...extra };
+  return { kind, T: g.T, n, S: g.S, P: g.P, St: kind === "stock" ? g.transposedS() : undefined, rate: g.exponentialRate, values, ...extra };
+}
+
+/** An array in the arena, as sent to a worker: byte offset and length in doubles. */
+export type ArenaRef = [number, number];
+
+/** What a worker receives: the task with every array as an arena reference. */
+export interface ArenaTask {
+  kind: TaskKind;
+  T: number;
+  n: number;
+  rate: number | null;
+  indicators?: boolean;
+  clamp?: boolean;
+  M?: number;
+  S: ArenaRef;
+  P: ArenaRef;
+  panels: ArenaRef;
+  St: ArenaRef | null;
+  values: ArenaRef;
+  content: ArenaRef | null;
+  initial: { stock0: ArenaRef; stock: ArenaRef; ageSum: ArenaRef; outAgeSum: ArenaRef; tooOld: ArenaRef } | null;
+  out: { inflow: ArenaRef | null; outflow: ArenaRef; stock: ArenaRef; stockChange: ArenaRef };
+}
+
+/** What a worker sends back besides the arena results: arrays it made itself (moved, not copied). */
+export interface TaskExtras {
+  meanAgeStock?: Float64Array;
+  meanAgeOutflow?: Float64Array;
+  unmet?: Float64Array;
 }
 
 /** The compiled worker script (from TypeScript sources under test, the built copy in dist/). */
@@ -39,7 +69,7 @@ function workerFile(): URL {
   return new URL("./worker.js", here);
 }
 
-type Pending = { task: CohortTask; resolve: (r: ModelResult) => void; reject: (e: Error) => void };
+type Pending = { task: ArenaTask; resolve: (r: TaskExtras) => void; reject: (e: Error) => void };
 
 export class CohortPool {
   private static instance: CohortPool | null = null;
@@ -64,9 +94,9 @@ export class CohortPool {
 
   constructor(readonly size: number) {
     for (let i = 0; i < size; i++) {
-      const w = new Worker(workerFile());
+      const w = new Worker(workerFile(), { workerData: { arena: KernelArena.shared().memory } });
       w.unref();
-      w.on("message", (msg: { ok: boolean; result?: ModelResult; error?: string }) => {
+      w.on("message", (msg: { ok: boolean; result?: TaskExtras; error?: string }) => {
         const p = this.busy.get(w)!;
         this.busy.delete(w);
         if (msg.ok) p.resolve(msg.result!);
@@ -83,7 +113,7 @@ export class CohortPool {
     }
   }
 
-  run(task: CohortTask): Promise<ModelResult> {
+  run(task: ArenaTask): Promise<TaskExtras> {
     return new Promise((resolve, reject) => {
       this.queue.push({ task, resolve, reject });
       this.pump();
@@ -96,7 +126,7 @@ export class CohortPool {
       const p = this.queue.shift()!;
       this.busy.set(w, p);
       w.ref();
-      w.postMessage(p.task, buffersOf(p.task));
+      w.postMessage(p.task);
     }
     if (this.busy.size === 0) for (const w of this.workers) w.unref();
   }
@@ -106,94 +136,96 @@ export class CohortPool {
   }
 }
 
-const FIELDS = ["inflow", "outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow", "unmet"] as const;
+const EXTRAS = ["meanAgeStock", "meanAgeOutflow", "unmet"] as const;
 
-/**
- * Reused buffers by length. Writing to freshly allocated memory costs a page fault per 4 KiB,
- * which here costs about as much as the kernel itself; buffers that travel to a worker and
- * back are kept for the next task of the same size. `recycle()` returns results to it.
- */
-const free = new Map<number, Float64Array[]>();
-function take(len: number): Float64Array {
-  return free.get(len)?.pop() ?? new Float64Array(len);
-}
-function copyOf(a: Float64Array, from: number, to: number): Float64Array {
-  const b = take(to - from);
-  b.set(a.subarray(from, to));
-  return b;
-}
-/** Hands arrays (e.g. results no longer needed) back for reuse by later tasks. */
-export function recycle(...arrays: (Float64Array | undefined | object)[]): void {
+/** Hands results no longer needed (arrays, or objects holding them) back to the arena for reuse. */
+export function recycle(...arrays: (Float64Array | undefined | null | object)[]): void {
+  const arena = KernelArena.existing();
+  if (!arena) return;
   for (const a of arrays) {
-    if (a instanceof Float64Array) {
-      if (a.byteOffset !== 0 || a.length * 8 !== a.buffer.byteLength || a.buffer instanceof SharedArrayBuffer) continue;
-      const l = free.get(a.length) ?? [];
-      if (!l.includes(a)) l.push(a);
-      free.set(a.length, l);
-    } else if (a && typeof a === "object") recycle(...Object.values(a));
+    if (a instanceof Float64Array) arena.release(a);
+    else if (a && typeof a === "object") recycle(...Object.values(a));
   }
 }
 
 /**
- * Runs many tasks over the pool; each task is split in parts so that every worker has work.
- * Each part travels as compact copies whose buffers are transferred (moved, not cloned) both
- * ways. (Shared memory would save the copies, but element access to SharedArrayBuffer-backed
- * arrays is several times slower in this V8.)
+ * Runs many tasks over the pool; each task is split in parts (multiples of 4 series) so that
+ * every worker has work. Inputs that are not already in the arena are copied there once;
+ * results (inflow, outflow, stock, stock change) are arena arrays: pass them to `recycle`
+ * when done with them, or they keep their memory until the process ends.
  */
 export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()): Promise<ModelResult[]> {
+  const arena = KernelArena.shared();
+  const ref = (a: Float64Array): ArenaRef => [a.byteOffset, a.length];
   const totalSeries = tasks.reduce((a, t) => a + t.n, 0);
-  const target = Math.max(16, Math.ceil(totalSeries / (pool.size * 8)));
+  const target = (Math.max(16, Math.ceil(totalSeries / (pool.size * 8))) + 3) & ~3;
   const results: ModelResult[] = [];
+  const temporary: Float64Array[] = [];
   const jobs: Promise<void>[] = [];
-  tasks.forEach((t, ti) => {
-    const per = t.kind === "composition" ? t.M ?? 1 : 1;
-    const T = t.T;
-    const rows = t.n * per;
-    const fields: (typeof FIELDS)[number][] = ["inflow", "outflow", "stock", "stockChange"];
-    if (t.indicators) fields.push("meanAgeStock", "meanAgeOutflow");
-    if (t.kind === "stock" && t.clamp) fields.push("unmet");
-    const r = {} as ModelResult;
-    const split = t.n > target;
-    if (split) for (const f of fields) r[f] = new Float64Array(rows * T);
-    if (split && t.initial) r.initialTooOld = new Float64Array(t.n);
-    if (t.kind === "stock") r.stockTarget = t.values;
-    results[ti] = r;
-    for (let from = 0; from < t.n; from += target) {
-      const n = Math.min(target, t.n - from);
-      const rowsOf = (a: Float64Array, width: number) => copyOf(a, from * width, (from + n) * width);
-      const init = t.initial
-        ? { stock0: t.initial.stock0.slice(from, from + n), stock: rowsOf(t.initial.stock, T), ageSum: rowsOf(t.initial.ageSum, T), outAgeSum: rowsOf(t.initial.outAgeSum, T), tooOld: t.initial.tooOld.slice(from, from + n) }
-        : null;
-      const len = n * per * T;
-      const part: CohortTask = {
-        ...t, n, S: copyOf(t.S, 0, t.S.length), P: copyOf(t.P, 0, t.P.length), values: rowsOf(t.values, T), content: t.content ? rowsOf(t.content, per * T) : undefined, initial: init,
-        out: t.kind === "inflow" ? { outflow: take(len), stock: take(len), stockChange: take(len) }
-          : { inflow: take(len), outflow: take(len), stock: take(len), stockChange: take(len) },
+  const pinned: Float64Array[] = [];
+  try {
+    tasks.forEach((t, ti) => {
+      const per = t.kind === "composition" ? t.M ?? 1 : 1;
+      const T = t.T;
+      const rows = t.n * per;
+      const mats = arena.groupMatrices(T, t.S, t.P, t.kind === "stock" ? t.St ?? transpose(t.S, T) : null);
+      pinned.push(t.P);
+      const input = (a: Float64Array) => {
+        const b = arena.copyIn(a);
+        if (b !== a) temporary.push(b);
+        return b;
       };
-      const whole = from === 0 && n === t.n;
-      jobs.push(pool.run(part).then((res) => {
-        const back = res as ModelResult & { inputs?: object };
-        recycle(back.inputs);
-        if (whole) {
-          for (const f of fields) r[f] = res[f]!;
-          if (res.initialTooOld) r.initialTooOld = res.initialTooOld;
-          return;
-        }
-        for (const f of fields) r[f]!.set(res[f]!, from * per * T);
-        if (res.initialTooOld) r.initialTooOld!.set(res.initialTooOld, from);
-        recycle(...fields.map((f) => res[f]));
-      }));
-    }
-  });
-  await Promise.all(jobs);
+      const values = t.kind === "inflow" ? arena.copyIn(t.values) : input(t.values);
+      const content = t.content ? input(t.content) : null;
+      const init = t.initial
+        ? { stock0: input(t.initial.stock0), stock: input(t.initial.stock), ageSum: input(t.initial.ageSum), outAgeSum: input(t.initial.outAgeSum), tooOld: input(t.initial.tooOld) }
+        : null;
+      const r: ModelResult = {
+        inflow: t.kind === "inflow" ? values : arena.alloc(rows * T),
+        outflow: arena.alloc(rows * T), stock: arena.alloc(rows * T), stockChange: arena.alloc(rows * T),
+      };
+      const extras: (typeof EXTRAS)[number][] = [];
+      if (t.indicators) extras.push("meanAgeStock", "meanAgeOutflow");
+      if (t.kind === "stock" && t.clamp) extras.push("unmet");
+      for (const f of extras) r[f] = new Float64Array(rows * T);
+      if (t.kind === "stock") r.stockTarget = t.values;
+      if (t.initial) r.initialTooOld = t.initial.tooOld;
+      results[ti] = r;
+      for (let from = 0; from < t.n; from += target) {
+        const n = Math.min(target, t.n - from);
+        const part = (a: Float64Array, width: number): ArenaRef => ref(a.subarray(from * width, (from + n) * width));
+        const msg: ArenaTask = {
+          kind: t.kind, T, n, rate: t.rate, indicators: t.indicators, clamp: t.clamp, M: t.M,
+          S: ref(mats.S), P: ref(mats.P), panels: ref(mats.panels), St: mats.St ? ref(mats.St) : null,
+          values: part(values, T), content: content ? part(content, per * T) : null,
+          initial: init ? { stock0: part(init.stock0, 1), stock: part(init.stock, T), ageSum: part(init.ageSum, T), outAgeSum: part(init.outAgeSum, T), tooOld: part(init.tooOld, 1) } : null,
+          out: { inflow: t.kind === "inflow" ? null : part(r.inflow, per * T), outflow: part(r.outflow, per * T), stock: part(r.stock, per * T), stockChange: part(r.stockChange, per * T) },
+        };
+        jobs.push(pool.run(msg).then((back) => {
+          for (const f of extras) if (back[f]) r[f]!.set(back[f]!, from * per * T);
+        }));
+      }
+    });
+    await Promise.all(jobs);
+  } finally {
+    await Promise.allSettled(jobs);
+    for (const a of temporary) arena.release(a);
+    for (const P of pinned) arena.unpin(P);
+  }
   return results;
 }
 
-/** Buffers of a task or result to move instead of cloning. */
+function transpose(S: Float64Array, T: number): Float64Array {
+  const St = new Float64Array(T * T);
+  for (let c = 0; c < T; c++) for (let t = c; t < T; t++) St[t * T + c] = S[c * T + t]!;
+  return St;
+}
+
+/** Buffers of a result to move instead of cloning. */
 export function buffersOf(o: object): ArrayBuffer[] {
   const out = new Set<ArrayBuffer>();
   const visit = (v: unknown) => {
-    if (v instanceof Float64Array) out.add(v.buffer as ArrayBuffer);
+    if (v instanceof Float64Array && !(v.buffer instanceof SharedArrayBuffer)) out.add(v.buffer as ArrayBuffer);
     else if (v && typeof v === "object") for (const x of Object.values(v)) visit(x);
   };
   visit(o);

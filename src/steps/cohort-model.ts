@@ -16,7 +16,7 @@ import {
 import { defineStep, type StepContext } from "./types.js";
 import { candidates, describeSeries, pick, type MatchRow } from "./cohort-match.js";
 import { ByCohortWriter } from "./by-cohort-writer.js";
-import { CohortPool, runTasks, taskFor } from "../cohort/pool.js";
+import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
 
 /** Below this many cells a step runs its models in the main thread (worker start-up costs more). */
 const POOL_MIN_CELLS = Number(process.env.CAIRN_POOL_MIN_CELLS ?? 2e8);
@@ -378,6 +378,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
         tick(done + chunk.s + 1);
       }
     }
+    if (usePool) recycle(r); // the arena keeps the memory for the next group
     done += gn;
     tick(done);
   }

@@ -2,9 +2,10 @@ import { describe, expect, it } from "vitest";
 import { readFileSync } from "node:fs";
 import path from "node:path";
 import { cohortProductTS, stockDrivenSolveTS } from "../../src/cohort/kernels.js";
-import { wasmProduct, wasmSolve } from "../../src/cohort/wasm/index.js";
-import { KERNELS_WASM_BASE64 } from "../../src/cohort/wasm/kernels-binary.js";
-import { CohortGroup, curveOf, inflowDriven, makeLifetime, stockDriven } from "../../src/cohort/index.js";
+import { kernelCalls, newKernelMemory, packPanels, panelLength, wasmInflow, wasmProduct, wasmSolve } from "../../src/cohort/wasm/index.js";
+import { KERNELS_PLAIN_WASM_BASE64, KERNELS_WASM_BASE64 } from "../../src/cohort/wasm/kernels-binary.js";
+import { KernelArena } from "../../src/cohort/arena.js";
+import { CohortGroup, curveOf, inflowDriven, initialContribution, makeLifetime, stockDriven } from "../../src/cohort/index.js";
 import { runTasks, taskFor, CohortPool } from "../../src/cohort/pool.js";
 import { mulberry32 } from "../../src/data/prng.js";
 import { ROOT } from "../helpers.js";
@@ -44,11 +45,69 @@ describe("WebAssembly SIMD kernels agree with the TypeScript kernels", () => {
     }
   });
 
-  it("the committed binary is the assembly of kernels.wat (run npm run build:wasm after editing it)", async () => {
+  it("the committed binaries are the assembly of kernels.wat (run npm run build:wasm after editing it)", async () => {
     const { assemble } = await import(path.join(ROOT, "scripts", "build-wasm.mjs"));
-    const bin: Buffer = await assemble(path.join(ROOT, "src", "cohort", "wasm", "kernels.wat"));
-    expect(bin.toString("base64")).toBe(KERNELS_WASM_BASE64);
+    const wat = path.join(ROOT, "src", "cohort", "wasm", "kernels.wat");
+    expect((await assemble(wat, "relaxed")).toString("base64")).toBe(KERNELS_WASM_BASE64);
+    expect((await assemble(wat, "plain")).toString("base64")).toBe(KERNELS_PLAIN_WASM_BASE64);
     expect(readFileSync(path.join(ROOT, "src", "cohort", "wasm", "kernels.wat"), "utf8")).toContain("f64x2");
+  });
+});
+
+describe("kernels in place in the shared arena", () => {
+  it.each([[4, 8], [7, 13], [13, 61], [40, 203]])("%i series × %i years: in place = staged = TypeScript (inflow-driven with an initial stock, solve with init)", (n, T) => {
+    const arena = KernelArena.shared();
+    const rnd = mulberry32(n * 7 + T);
+    const P = triangular(T, (c, t) => Math.exp(-(t - c) / 7) / 7);
+    const St = new Float64Array(T * T);
+    for (let t = 0; t < T; t++) for (let c = 0; c <= t; c++) St[t * T + c] = Math.exp(-(t - c) / 9);
+    const I = new Float64Array(n * T).map(() => rnd() * 100);
+    const initOut = new Float64Array(n * T).map(() => rnd());
+    const stock0 = new Float64Array(n).map(() => 500 * rnd());
+    // staged: plain arrays
+    const staged = wasmInflow(I, n, T, P, initOut, stock0);
+    const expectOut = new Float64Array(n * T);
+    cohortProductTS(I, n, T, P, expectOut);
+    // in place: every array in the arena, the panels prepared there
+    const mats = arena.groupMatrices(T, St, P, St);
+    const Ia = arena.copyIn(I), io = arena.copyIn(initOut), s0 = arena.copyIn(stock0);
+    const out = { outflow: arena.alloc(n * T), stock: arena.alloc(n * T), stockChange: arena.alloc(n * T) };
+    const before = kernelCalls.inPlace;
+    wasmInflow(Ia, n, T, mats.P, io, s0, out);
+    expect(kernelCalls.inPlace).toBe(before + 1);
+    for (let i = 0; i < n * T; i++) {
+      expect(out.outflow[i]).toBe(staged.outflow[i]);
+      expect(out.stock[i]).toBe(staged.stock[i]);
+      expect(Math.abs(out.outflow[i]! - initOut[i]! - expectOut[i]!)).toBeLessThanOrEqual(1e-12 * Math.abs(expectOut[i]!) + 1e-12);
+    }
+    // solve, with an initial stock term, against the TypeScript solve
+    const Z = arena.copyIn(out.stock);
+    const ia = arena.alloc(n * T), aa = arena.alloc(n * T);
+    wasmSolve(Z, n, T, mats.St!, io, false, ia, aa);
+    expect(kernelCalls.inPlace).toBe(before + 2);
+    const i2 = new Float64Array(n * T), a2 = new Float64Array(n * T);
+    stockDrivenSolveTS(Z, n, T, St, initOut, false, i2, a2);
+    for (let i = 0; i < n * T; i++) expect(Math.abs(ia[i]! - i2[i]!)).toBeLessThanOrEqual(1e-9 * Math.max(1, Math.abs(i2[i]!)));
+    arena.unpin(P);
+    for (const a of [Ia, io, s0, Z, ia, aa, ...Object.values(out)]) arena.release(a);
+  });
+
+  it("the plain-SIMD binary (no fused multiply-add) gives the TypeScript product too", () => {
+    const mem = newKernelMemory(16);
+    const k = new WebAssembly.Instance(new WebAssembly.Module(Buffer.from(KERNELS_PLAIN_WASM_BASE64, "base64")), { env: { mem } }).exports as unknown as { product(...a: number[]): void };
+    const n = 8, T = 29;
+    const rnd = mulberry32(3);
+    const M = triangular(T, (c, t) => 1 / (1 + t - c));
+    const f = new Float64Array(mem.buffer);
+    const pl = panelLength(T);
+    packPanels(f, M, T);
+    const I = new Float64Array(n * T).map(() => rnd());
+    f.set(I, pl);
+    // the panels sit at double offset 0, the input at pl, the output after it
+    k.product(pl * 8, 0, (pl + n * T) * 8, n, T);
+    const want = new Float64Array(n * T);
+    cohortProductTS(I, n, T, M, want);
+    for (let i = 0; i < n * T; i++) expect(Math.abs(f[pl + n * T + i]! - want[i]!)).toBeLessThanOrEqual(1e-13 * want[i]!);
   });
 });
 
@@ -73,6 +132,30 @@ describe("worker pool gives the same results as the main thread", () => {
       for (let s = 0; s < n; s++) for (let t = 0; t < T; t++) {
         expect(e!.stock[(2 * s) * T + t]! + e!.stock[(2 * s + 1) * T + t]!).toBeCloseTo(b.stock[s * T + t]!, 9);
       }
+    } finally {
+      await pool.close();
+    }
+  });
+
+  it("with an initial stock, indicators and clamp, and series counts that are not multiples of 4", async () => {
+    const T = 45, n = 37;
+    const lt = makeLifetime({ distribution: "weibull", shape: 2, scale: 14 }, "t");
+    const cu = curveOf(lt, T + 60);
+    const g = new CohortGroup(T, Array(T).fill(cu));
+    const rnd = mulberry32(11);
+    const I = new Float64Array(n * T).map(() => 1 + rnd() * 9);
+    const init = initialContribution({ byAge: null, total: new Float64Array(n).map(() => 100 + 50 * rnd()), A: 40, curves: Array(40).fill(cu) }, n, T);
+    const pool = new CohortPool(2);
+    try {
+      const [a] = await runTasks([taskFor("inflow", g, I, n, { initial: init, indicators: true })], pool);
+      const b = inflowDriven(g, I, n, { initial: init, indicators: true });
+      for (const f of ["outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow"] as const) expect(Array.from(a![f]!), f).toEqual(Array.from(b[f]!));
+      // a falling target makes negative inflow: clamped to 0
+      const Z = new Float64Array(n * T).map((_, i) => 300 * Math.exp(-(i % T) / 8));
+      const [c] = await runTasks([taskFor("stock", g, Z, n, { initial: init, clamp: true, indicators: true })], pool);
+      const d = stockDriven(g, Z, n, { initial: init, clamp: true, indicators: true });
+      for (const f of ["inflow", "outflow", "stock", "unmet", "meanAgeStock"] as const) expect(Array.from(c![f]!), f).toEqual(Array.from(d[f]!));
+      expect(d.unmet!.some((x) => Math.abs(x) > 1e-9)).toBe(true);
     } finally {
       await pool.close();
     }

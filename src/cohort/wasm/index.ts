@@ -1,46 +1,119 @@
 /**
  * The WebAssembly SIMD kernels (kernels.wat), with the same contracts as the TypeScript ones
- * in ../kernels.ts. One instance per thread; inputs are copied into its memory in blocks.
+ * in ../kernels.ts.
+ *
+ * Each thread has its own instance on a memory of its own, into which inputs are copied in
+ * blocks ("staged"). Threads may also attach the shared cohort arena (../arena.ts): arrays
+ * that live there, with their matrices prepared there, are computed in place, with no copy.
  */
 import { setFlagsFromString } from "node:v8";
-import { KERNELS_WASM_BASE64 } from "./kernels-binary.js";
+import { KERNELS_PLAIN_WASM_BASE64, KERNELS_WASM_BASE64 } from "./kernels-binary.js";
 
 interface Kernels {
-  mem: WebAssembly.Memory;
-  product(I: number, M: number, O: number, np: number, tp: number): void;
-  inflow(I: number, M: number, O: number, S: number, D: number, initOut: number, stock0: number, np: number, tp: number): void;
-  solve(Z: number, St: number, init: number, I: number, A: number, np: number, T: number, clamp: number): void;
+  product(I: number, M: number, O: number, n: number, T: number): void;
+  inflow(I: number, M: number, O: number, S: number, D: number, initOut: number, stock0: number, n: number, T: number): void;
+  solve(Z: number, St: number, init: number, I: number, A: number, n: number, T: number, clamp: number): void;
 }
 
-let inst: Kernels | null = null;
+/** The largest memory a kernel instance may use: 65,536 pages of 64 KiB (4 GiB, the wasm32 limit). */
+export const MAX_PAGES = 65536;
 
-function kernels(): Kernels {
-  if (!inst) {
+let compiled: WebAssembly.Module | null = null;
+let relaxed = false;
+
+function kernelModule(): WebAssembly.Module {
+  if (!compiled) {
     // Compile with the optimising tier at once: a kernel call can run for seconds, and
-    // WebAssembly code is not replaced while it runs.
+    // WebAssembly code is not replaced while it runs. Relaxed SIMD (the fused multiply-add)
+    // is behind a flag in Node 20's engine and on by default in later ones.
     setFlagsFromString("--no-liftoff");
-    const mod = new WebAssembly.Module(Buffer.from(KERNELS_WASM_BASE64, "base64"));
-    const i = new WebAssembly.Instance(mod, {});
-    inst = i.exports as unknown as Kernels;
+    setFlagsFromString("--experimental-wasm-relaxed-simd");
+    const fma = Buffer.from(KERNELS_WASM_BASE64, "base64");
+    relaxed = WebAssembly.validate(fma);
+    compiled = new WebAssembly.Module(relaxed ? fma : Buffer.from(KERNELS_PLAIN_WASM_BASE64, "base64"));
   }
-  return inst;
+  return compiled;
 }
 
-function ensureBytes(k: Kernels, bytes: number): void {
-  const have = k.mem.buffer.byteLength;
-  if (bytes > have) k.mem.grow(Math.ceil((bytes - have) / 65536));
+/** Which kernel binary runs: relaxed SIMD (fused multiply-add) or plain SIMD. */
+export function kernelVariant(): "relaxed-simd" | "simd" {
+  kernelModule();
+  return relaxed ? "relaxed-simd" : "simd";
+}
+
+function instantiate(mem: WebAssembly.Memory): Kernels {
+  return new WebAssembly.Instance(kernelModule(), { env: { mem } }).exports as unknown as Kernels;
+}
+
+export function newKernelMemory(initialPages = 1): WebAssembly.Memory {
+  return new WebAssembly.Memory({ initial: initialPages, maximum: MAX_PAGES, shared: true });
+}
+
+// ---- this thread's own instance: staged calls ----
+
+let own: { k: Kernels; mem: WebAssembly.Memory } | null = null;
+
+function ownKernels(bytes: number): { k: Kernels; f: Float64Array } {
+  if (!own) {
+    const mem = newKernelMemory();
+    own = { k: instantiate(mem), mem };
+  }
+  const have = own.mem.buffer.byteLength;
+  if (bytes > have) own.mem.grow(Math.ceil((bytes - have) / 65536));
+  return { k: own.k, f: new Float64Array(own.mem.buffer) };
+}
+
+// ---- the shared arena: in-place calls ----
+
+let arena: { k: Kernels; mem: WebAssembly.Memory } | null = null;
+const arenaBuffers = new WeakSet<ArrayBufferLike>();
+/** Byte offsets of matrices prepared in the arena: panels of a leaving matrix (see packPanels). */
+const panelsOf = new WeakMap<Float64Array, number>();
+
+/** Attaches the shared arena memory to this thread (once per thread). */
+export function attachArena(mem: WebAssembly.Memory): void {
+  if (arena?.mem === mem) return;
+  arena = { k: instantiate(mem), mem };
+}
+
+/** A view of `length` doubles at `byteOffset` in the attached arena. */
+export function arenaView(byteOffset: number, length: number): Float64Array {
+  if (!arena) throw new Error("no cohort arena is attached to this thread");
+  const b = arena.mem.buffer;
+  arenaBuffers.add(b);
+  return new Float64Array(b, byteOffset, length);
+}
+
+/** True when `a` is a view of the attached arena (made by arenaView). */
+export function inArena(a: Float64Array): boolean {
+  return arenaBuffers.has(a.buffer);
+}
+
+/** Byte offset of `a` in the arena, or −1 when it lives elsewhere. */
+function at(a: Float64Array | null | undefined): number {
+  return a && arenaBuffers.has(a.buffer) ? a.byteOffset : -1;
+}
+
+/** Records that `panels` (an arena view) holds packPanels(M). */
+export function registerPanels(M: Float64Array, panels: Float64Array): void {
+  panelsOf.set(M, at(panels));
 }
 
 const pad4 = (n: number) => (n + 3) & ~3;
-/** Series per block: keeps each call's memory near 64 MiB whatever the batch size. */
-function blockRows(rowBytes: number): number {
-  return Math.max(4, Math.floor((64 * 2 ** 20) / (2 * rowBytes)) & ~3);
+
+/** Kernel calls made by this thread, in place in the arena or staged through its own memory. */
+export const kernelCalls = { inPlace: 0, staged: 0 };
+
+/** Doubles that packPanels writes for a T × T matrix. */
+export function panelLength(T: number): number {
+  return pad4(T) * pad4(T);
 }
 
-/** Writes M (T × T) into wasm memory at double offset 0 in panels of 4 years. */
-function packPanels(f: Float64Array, M: Float64Array, T: number, tp: number): void {
+/** Writes M (T × T) into dst[0 ..] in panels of 4 years (the layout `product` reads). */
+export function packPanels(dst: Float64Array, M: Float64Array, T: number): void {
+  const tp = pad4(T);
   // Panel b holds M[c, 4b..4b+3] for every cohort c, contiguously.
-  f.fill(0, 0, tp * tp);
+  dst.fill(0, 0, tp * tp);
   for (let b = 0; b < tp / 4; b++) {
     const base = b * tp * 4;
     const cEnd = Math.min(T, 4 * b + 4);
@@ -48,115 +121,158 @@ function packPanels(f: Float64Array, M: Float64Array, T: number, tp: number): vo
       const row = c * T;
       for (let j = 0; j < 4; j++) {
         const t = 4 * b + j;
-        if (t < T) f[base + c * 4 + j] = M[row + t]!;
+        if (t < T) dst[base + c * 4 + j] = M[row + t]!;
       }
     }
   }
 }
 
-/** Copies rows s0..s0+m of a (n × T) into wasm memory at double offset `at`, padded to tp columns and np rows. */
-function putRows(f: Float64Array, a: Float64Array, s0: number, m: number, np: number, T: number, tp: number, at: number): void {
-  if (T === tp) f.set(a.subarray(s0 * T, (s0 + m) * T), at);
-  else for (let s = 0; s < m; s++) {
-    f.set(a.subarray((s0 + s) * T, (s0 + s) * T + T), at + s * tp);
-    f.fill(0, at + s * tp + T, at + (s + 1) * tp);
-  }
-  f.fill(0, at + m * tp, at + np * tp);
+// ---- staging helpers (own instance) ----
+
+/** Series per block: keeps each staged call's memory near 64 MiB whatever the batch size. */
+function blockRows(arrays: number, T: number): number {
+  return Math.max(4, Math.floor((64 * 2 ** 20) / (arrays * T * 8)) & ~3);
 }
 
-function getRows(f: Float64Array, a: Float64Array, s0: number, m: number, T: number, tp: number, at: number): void {
-  if (T === tp) a.set(f.subarray(at, at + m * T), s0 * T);
-  else for (let s = 0; s < m; s++) a.set(f.subarray(at + s * tp, at + s * tp + T), (s0 + s) * T);
+/** Copies rows s0..s0+m of a (· × T) to f[at ..], then zero rows up to np. */
+function putRows(f: Float64Array, a: Float64Array, s0: number, m: number, np: number, T: number, at: number): void {
+  f.set(a.subarray(s0 * T, (s0 + m) * T), at);
+  f.fill(0, at + m * T, at + np * T);
 }
+
+function getRows(f: Float64Array, a: Float64Array, s0: number, m: number, T: number, at: number): void {
+  a.set(f.subarray(at, at + m * T), s0 * T);
+}
+
+// ---- the kernels ----
 
 /** out[s, t] = Σ_{c ≤ t} inp[s, c] · M[c, t] (M: T × T, zeros where c > t). */
 export function wasmProduct(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {
-  const k = kernels();
-  const tp = pad4(T);
-  const mBytes = tp * tp * 8;
-  const rowBytes = tp * 8;
-  const block = Math.min(pad4(n), blockRows(rowBytes));
-  ensureBytes(k, mBytes + 2 * block * rowBytes);
-  let f = new Float64Array(k.mem.buffer);
-  packPanels(f, M, T, tp);
-  const iOff = mBytes;
-  const oOff = mBytes + block * rowBytes;
+  const n4 = n & ~3;
+  const pAt = arena ? panelsOf.get(M) : undefined;
+  const iAt = at(inp), oAt = at(out);
+  if (pAt !== undefined && n4 > 0 && iAt >= 0 && oAt >= 0) {
+    arena!.k.product(iAt, pAt, oAt, n4, T);
+    kernelCalls.inPlace++;
+    if (n4 < n) wasmProduct(inp.subarray(n4 * T), n - n4, T, M, out.subarray(n4 * T));
+    return;
+  }
+  kernelCalls.staged++;
+  const mLen = panelLength(T);
+  const block = Math.min(pad4(n), blockRows(2, T));
+  const { k } = ownKernels((mLen + 2 * block * T) * 8);
+  let f = new Float64Array(own!.mem.buffer);
+  packPanels(f, M, T);
+  const iOff = mLen, oOff = mLen + block * T;
   for (let s0 = 0; s0 < n; s0 += block) {
     const m = Math.min(block, n - s0);
-    const np = pad4(m);
-    f = new Float64Array(k.mem.buffer);
-    putRows(f, inp, s0, m, np, T, tp, iOff / 8);
-    k.product(iOff, 0, oOff, np, tp);
-    getRows(f, out, s0, m, T, tp, oOff / 8);
+    f = new Float64Array(own!.mem.buffer);
+    putRows(f, inp, s0, m, pad4(m), T, iOff);
+    k.product(iOff * 8, 0, oOff * 8, pad4(m), T);
+    getRows(f, out, s0, m, T, oOff);
   }
 }
 
-/** Stock-driven solve (see stockDrivenSolve in ../kernels.ts). */
+/** The balance from an outflow: stock(t) = stock(t − 1) + inflow(t) − outflow(t), from stock0. */
+function balance(inp: Float64Array, outflow: Float64Array, initOut: Float64Array | null, stock0: Float64Array | null, n: number, T: number,
+  stock: Float64Array, stockChange: Float64Array): void {
+  for (let s = 0; s < n; s++) {
+    let prev = stock0 ? stock0[s]! : 0;
+    for (let i = s * T; i < s * T + T; i++) {
+      if (initOut) outflow[i] += initOut[i]!;
+      const v = prev + inp[i]! - outflow[i]!;
+      stock[i] = v;
+      stockChange[i] = v - prev;
+      prev = v;
+    }
+  }
+}
+
 /**
  * The inflow-driven model in one call: outflow = Σ_c I(c)·P[c, t] (+ initOut), stock by the
- * balance from stock0, stock change. Returns new arrays.
+ * balance from stock0, stock change. Writes into `out` where given, else into new arrays.
  */
 export function wasmInflow(inp: Float64Array, n: number, T: number, P: Float64Array, initOut: Float64Array | null, stock0: Float64Array | null,
   out: { outflow?: Float64Array; stock?: Float64Array; stockChange?: Float64Array } = {}): { outflow: Float64Array; stock: Float64Array; stockChange: Float64Array } {
-  const k = kernels();
-  const tp = pad4(T);
-  const mBytes = tp * tp * 8;
-  const rowBytes = tp * 8;
-  const arrays = 4 + (initOut ? 1 : 0);
-  const block = Math.min(pad4(n), Math.max(4, Math.floor((64 * 2 ** 20) / (arrays * rowBytes)) & ~3));
-  ensureBytes(k, mBytes + arrays * block * rowBytes + block * 8 + 64);
-  let f = new Float64Array(k.mem.buffer);
-  packPanels(f, P, T, tp);
-  const at = (j: number) => mBytes + j * block * rowBytes; // bytes
-  const s0Off = at(arrays);
   const outflow = out.outflow ?? new Float64Array(n * T);
   const stock = out.stock ?? new Float64Array(n * T);
   const stockChange = out.stockChange ?? new Float64Array(n * T);
+  const res = { outflow, stock, stockChange };
+  const n4 = n & ~3;
+  const pAt = arena ? panelsOf.get(P) : undefined;
+  const I = at(inp), O = at(outflow), S = at(stock), D = at(stockChange);
+  if (pAt !== undefined && n4 > 0 && I >= 0 && O >= 0 && S >= 0 && D >= 0) {
+    const io = initOut ? at(initOut) : 0;
+    const s0 = stock0 ? at(stock0) : 0;
+    kernelCalls.inPlace++;
+    if (io >= 0 && s0 >= 0) arena!.k.inflow(I, pAt, O, S, D, io, s0, n4, T);
+    else {
+      arena!.k.product(I, pAt, O, n4, T);
+      balance(inp, outflow, initOut, stock0, n4, T, stock, stockChange);
+    }
+    if (n4 < n) {
+      const tail = (a: Float64Array) => a.subarray(n4 * T);
+      wasmInflow(tail(inp), n - n4, T, P, initOut && tail(initOut), stock0 && stock0.subarray(n4),
+        { outflow: tail(outflow), stock: tail(stock), stockChange: tail(stockChange) });
+    }
+    return res;
+  }
+  kernelCalls.staged++;
+  const mLen = panelLength(T);
+  const arrays = 4 + (initOut ? 1 : 0);
+  const block = Math.min(pad4(n), blockRows(arrays, T));
+  const { k } = ownKernels((mLen + arrays * block * T + block) * 8);
+  let f = new Float64Array(own!.mem.buffer);
+  packPanels(f, P, T);
+  const off = (j: number) => mLen + j * block * T; // doubles
+  const s0Off = off(arrays);
   for (let s0 = 0; s0 < n; s0 += block) {
     const m = Math.min(block, n - s0);
     const np = pad4(m);
-    f = new Float64Array(k.mem.buffer);
-    putRows(f, inp, s0, m, np, T, tp, at(0) / 8);
-    if (initOut) putRows(f, initOut, s0, m, np, T, tp, at(4) / 8);
+    f = new Float64Array(own!.mem.buffer);
+    putRows(f, inp, s0, m, np, T, off(0));
+    if (initOut) putRows(f, initOut, s0, m, np, T, off(4));
     if (stock0) {
-      f.set(stock0.subarray(s0, s0 + m), s0Off / 8);
-      f.fill(0, s0Off / 8 + m, s0Off / 8 + np);
+      f.set(stock0.subarray(s0, s0 + m), s0Off);
+      f.fill(0, s0Off + m, s0Off + np);
     }
-    k.inflow(at(0), 0, at(1), at(2), at(3), initOut ? at(4) : 0, stock0 ? s0Off : 0, np, tp);
-    getRows(f, outflow, s0, m, T, tp, at(1) / 8);
-    getRows(f, stock, s0, m, T, tp, at(2) / 8);
-    getRows(f, stockChange, s0, m, T, tp, at(3) / 8);
+    k.inflow(off(0) * 8, 0, off(1) * 8, off(2) * 8, off(3) * 8, initOut ? off(4) * 8 : 0, stock0 ? s0Off * 8 : 0, np, T);
+    getRows(f, outflow, s0, m, T, off(1));
+    getRows(f, stock, s0, m, T, off(2));
+    getRows(f, stockChange, s0, m, T, off(3));
   }
-  return { outflow, stock, stockChange };
+  return res;
 }
 
+/** Stock-driven solve (see stockDrivenSolve in ../kernels.ts). St: T × T, row = year, column = cohort. */
 export function wasmSolve(Z: Float64Array, n: number, T: number, St: Float64Array, init: Float64Array | null, clamp: boolean,
   inflow: Float64Array, achieved: Float64Array): void {
-  const k = kernels();
-  const rowBytes = T * 8;
-  const stBytes = T * T * 8;
-  const block = Math.min(pad4(n), Math.max(4, Math.floor((64 * 2 ** 20) / (4 * rowBytes)) & ~3));
+  const n4 = n & ~3;
+  const zAt = at(Z), sAt = at(St), iAt = at(inflow), aAt = at(achieved), initAt = init ? at(init) : 0;
+  if (arena && n4 > 0 && zAt >= 0 && sAt >= 0 && iAt >= 0 && aAt >= 0 && initAt >= 0) {
+    arena.k.solve(zAt, sAt, initAt, iAt, aAt, n4, T, clamp ? 1 : 0);
+    kernelCalls.inPlace++;
+    if (n4 < n) {
+      const tail = (a: Float64Array) => a.subarray(n4 * T);
+      wasmSolve(tail(Z), n - n4, T, St, init && tail(init), clamp, tail(inflow), tail(achieved));
+    }
+    return;
+  }
+  kernelCalls.staged++;
   const arrays = init ? 4 : 3;
-  ensureBytes(k, stBytes + (arrays + 1) * block * rowBytes + 64);
-  let f = new Float64Array(k.mem.buffer);
+  const block = Math.min(pad4(n), blockRows(arrays, T));
+  const { k } = ownKernels((T * T + arrays * block * T) * 8);
+  let f = new Float64Array(own!.mem.buffer);
   f.set(St, 0);
-  const zOff = stBytes;
-  const iOff = zOff + block * rowBytes;
-  const aOff = iOff + block * rowBytes;
-  const initOff = init ? aOff + block * rowBytes : 0;
+  const zOff = T * T, iOff = zOff + block * T, aOff = iOff + block * T, initOff = aOff + block * T;
   for (let s0 = 0; s0 < n; s0 += block) {
     const m = Math.min(block, n - s0);
     const np = pad4(m);
-    f = new Float64Array(k.mem.buffer);
-    f.set(Z.subarray(s0 * T, (s0 + m) * T), zOff / 8);
-    f.fill(0, zOff / 8 + m * T, zOff / 8 + np * T);
-    f.fill(0, iOff / 8, iOff / 8 + np * T);
-    if (init) {
-      f.set(init.subarray(s0 * T, (s0 + m) * T), initOff / 8);
-      f.fill(0, initOff / 8 + m * T, initOff / 8 + np * T);
-    }
-    k.solve(zOff, 0, initOff, iOff, aOff, np, T, clamp ? 1 : 0);
-    inflow.set(f.subarray(iOff / 8, iOff / 8 + m * T), s0 * T);
-    achieved.set(f.subarray(aOff / 8, aOff / 8 + m * T), s0 * T);
+    f = new Float64Array(own!.mem.buffer);
+    putRows(f, Z, s0, m, np, T, zOff);
+    if (init) putRows(f, init, s0, m, np, T, initOff);
+    k.solve(zOff * 8, 0, init ? initOff * 8 : 0, iOff * 8, aOff * 8, np, T, clamp ? 1 : 0);
+    getRows(f, inflow, s0, m, T, iOff);
+    getRows(f, achieved, s0, m, T, aOff);
   }
 }
