@@ -14,9 +14,10 @@ export type Row = Record<string, unknown>;
 
 /** CAIRN_PROFILE=1 prints every statement slower than 50 ms to stderr (for tuning). */
 const PROFILE = process.env.CAIRN_PROFILE === "1";
+const PROFILE_MS = Number(process.env.CAIRN_PROFILE_MS ?? 50);
 function profile(sql: string, t0: number): void {
   const ms = performance.now() - t0;
-  if (ms > 50) process.stderr.write(`[sql ${ms.toFixed(0)} ms] ${sql.replace(/\s+/g, " ").slice(0, 160)}\n`);
+  if (ms > PROFILE_MS) process.stderr.write(`[sql ${ms.toFixed(0)} ms] ${sql.replace(/\s+/g, " ").slice(0, Number(process.env.CAIRN_PROFILE_CHARS ?? 160))}\n`);
 }
 
 export class Session {

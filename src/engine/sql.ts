@@ -41,5 +41,15 @@ export function setExactSumUnit(gramsPerBaseUnit: number): void {
  * total is returned as DOUBLE. As fast as a floating sum in DuckDB, and byte-identical on re-run.
  */
 export function exactSum(expr: string): string {
-  return `(CAST(sum(CAST(round((${expr}) * ${sumScale}) AS BIGINT)) AS DOUBLE) / ${sumScale})`;
+  return exactTotal(exactUnits(expr));
+}
+
+/** The value in whole resolution units (1 g), as BIGINT: the term that exactSum adds up. */
+export function exactUnits(expr: string): string {
+  return `CAST(round((${expr}) * ${sumScale}) AS BIGINT)`;
+}
+
+/** exactSum of terms already in resolution units (from exactUnits), e.g. computed once per row and summed under several conditions. */
+export function exactTotal(unitsExpr: string): string {
+  return `(CAST(sum(${unitsExpr}) AS DOUBLE) / ${sumScale})`;
 }

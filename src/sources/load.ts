@@ -223,6 +223,8 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const csvScanT = `__csvscan_${name}`;
   let checkedT = `__checked_${name}`;
   const checkedView = `__checkedv_${name}`;
+  /** For a clean Parquet source: the typed rows without the checks (set by buildChecked). */
+  let cleanSelect: string | null = null;
 
   const names = format === "csv" && !header ? `, names = [${Object.keys(src.columns).map(lit).join(", ")}]` : "";
   const fromExpr = async (numbered: boolean): Promise<{ from: string; types: Map<string, string> }> => {
@@ -288,15 +290,23 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
     const select = `SELECT ${typedSel}, __file, __row, ${reasonExpr} AS __reason, ${firstCol} AS __col, ${firstVal} AS __value FROM ${from}`;
     if (format === "parquet") {
-      // Parquet is typed and fast to rescan: check it through a view, and keep the view as the
+      // Parquet is typed and fast to rescan: check it through a view, and keep a view as the
       // source when it is clean (no copy of the data). Only a source with rejects is materialised.
+      // One scan counts the failing rows and finds candidate duplicate keys: the good rows'
+      // 64-bit hashes of their key columns, sorted, compared with their neighbours (equal keys
+      // have equal hashes; sorting 8-byte values is several times faster here than grouping by
+      // the keys). Only a hash shared by two good rows, in practice a real duplicate, sends the
+      // source to the exact check below.
       await s.run(`CREATE OR REPLACE VIEW ${ident(checkedView)} AS ${select}`);
-      const badRows = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedView)} WHERE __reason IS NOT NULL`));
-      const dupKeys = keyCols.length
-        ? Number(await s.scalar(`SELECT count(*) FROM (SELECT ${idents(keyCols)} FROM ${ident(checkedView)} WHERE __reason IS NULL GROUP BY ALL HAVING count(*) > 1)`))
-        : 0;
-      if (badRows === 0 && dupKeys === 0) {
+      const h = keyCols.length ? `hash(${idents(keyCols)})` : "0";
+      const [scan] = await s.all(`SELECT count(*) FILTER (WHERE h IS NULL) AS bad, count(*) FILTER (WHERE h = p) AS shared
+        FROM (SELECT h, lag(h) OVER (ORDER BY h) AS p FROM (SELECT CASE WHEN __reason IS NULL THEN ${h} END AS h FROM ${ident(checkedView)}))`);
+      const badRows = Number(scan!.bad);
+      const sharedHashes = keyCols.length ? Number(scan!.shared) : 0;
+      if (badRows === 0 && sharedHashes === 0) {
+        // Every row passed: the source is the typed projection, without the checks' expressions.
         checkedT = checkedView;
+        cleanSelect = `SELECT ${typedSel}, __file, __row FROM ${from}`;
         return;
       }
       checkedT = `__checked_${name}`;
@@ -321,6 +331,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     throw new DataError(`source ${name}: cannot read ${files.length === 1 ? files[0] : src.path}: ${firstLine(e)}`);
   }
   // A clean Parquet source is a view already checked: no rejects to count again.
+  if (cleanSelect) await s.run(`CREATE OR REPLACE VIEW ${ident(checkedView)} AS ${cleanSelect}`);
   let bad = checkedT === checkedView ? 0 : Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NOT NULL`));
   if (bad > 0 && format === "csv") {
     // Locate rejected rows: a second, ordered read gives each row its number within its file.
@@ -357,7 +368,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const outCols = [...cols.map((c) => c.name), ...(hasQty && !hasUnitCol ? ["unit"] : [])];
   const filter = src.filter ? `AND (${src.filter})` : "";
   try {
-    await s.run(`CREATE OR REPLACE VIEW ${ident(name)} AS SELECT ${idents(outCols)} FROM ${ident(checkedT)} WHERE __reason IS NULL ${filter}`);
+    await s.run(`CREATE OR REPLACE VIEW ${ident(name)} AS SELECT ${idents(outCols)} FROM ${ident(checkedT)} WHERE ${cleanSelect ? "TRUE" : "__reason IS NULL"} ${filter}`);
   } catch (e) {
     throw new PipelineError(`sources.${name}.filter: ${JSON.stringify(src.filter)} is not a valid condition: ${firstLine(e)}`);
   }

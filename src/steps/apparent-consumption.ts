@@ -6,7 +6,7 @@
 import { z } from "zod";
 import { ColumnMap, Name } from "../spec/common.js";
 import { DataError } from "../errors.js";
-import { exactSum, ident, idents, keyMap, lit } from "../engine/sql.js";
+import { exactSum, exactTotal, exactUnits, ident, idents, keyMap, lit } from "../engine/sql.js";
 import { defineStep } from "./types.js";
 import { applyConcordance } from "./mapping.js";
 
@@ -89,12 +89,13 @@ export const apparentConsumptionStep = defineStep({
       failMessage: "trade asymmetry",
     });
 
-    // One long view of flows: production rows and trade rows (reporter as region), never copied.
+    // One long view of flows: production rows and trade rows (reporter as region), one quantity
+    // per row named by its kind (production, imports, exports), never copied.
     await s.run(`CREATE OR REPLACE VIEW ${T("flows")} AS
         SELECT CAST(${ident(pc.region!)} AS VARCHAR) AS region, ${ident(pc.commodity!)} AS commodity, ${ident(pc.year!)} AS year, ${pUnit} AS unit,
-          CAST(${ident(pc.quantity!)} AS DOUBLE) AS production, 0.0 AS imports, 0.0 AS exports, FALSE AS mirrored FROM ${ident(o.production)}
+          'production' AS kind, CAST(${ident(pc.quantity!)} AS DOUBLE) AS quantity, FALSE AS mirrored FROM ${ident(o.production)}
         UNION ALL
-        SELECT reporter, commodity, year, unit, 0.0, CASE WHEN flow = 'import' THEN quantity ELSE 0.0 END, CASE WHEN flow = 'export' THEN quantity ELSE 0.0 END, mirrored
+        SELECT reporter, commodity, year, unit, CASE WHEN flow = 'import' THEN 'imports' ELSE 'exports' END, quantity, mirrored
         FROM ${T("trade")}`);
     const available = o.concordance ? ["region", "product", "material"] : ["region", "commodity"];
     const keys = o.keys ?? available;
@@ -103,7 +104,7 @@ export const apparentConsumptionStep = defineStep({
     const extra: { name: string; keys: string[] }[] = [];
     if (o.concordance) {
       await applyConcordance(ctx, {
-        step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports"], flags: ["mirrored"],
+        step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports"], flags: ["mirrored"], long: { kind: "kind", value: "quantity" },
         concordance: o.concordance, outputKeys: keys, output: `__${id}_raw`, unmapped: `${id}_unmapped`,
       });
       extra.push({ name: `${id}_unmapped`, keys: ["region", "commodity", "year"] });
@@ -112,10 +113,11 @@ export const apparentConsumptionStep = defineStep({
       if (pieces.length) {
         throw new DataError(`step ${id}: commodity ${pieces.map((p) => p.c).join(", ")} is counted in pieces; mixing pieces with ${ctx.pipeline.base_unit} needs a conversion: give a concordance with unit_mass`);
       }
+      const ofKind = (k: string) => exactTotal(`CASE WHEN kind = ${lit(k)} THEN __units ELSE 0 END`);
       await s.run(`CREATE OR REPLACE TABLE ${T("raw")} AS
-        SELECT ${idents(keys)}, year, ${exactSum("production")} AS production, ${exactSum("imports")} AS imports, ${exactSum("exports")} AS exports,
+        SELECT ${idents(keys)}, year, ${ofKind("production")} AS production, ${ofKind("imports")} AS imports, ${ofKind("exports")} AS exports,
           ${lit(ctx.pipeline.base_unit)} AS unit, bool_or(mirrored) AS mirrored
-        FROM ${T("flows")} GROUP BY ALL`);
+        FROM (SELECT *, ${exactUnits("quantity")} AS __units FROM ${T("flows")}) GROUP BY ALL`);
     }
     await s.run(`ALTER TABLE ${T("raw")} ADD COLUMN consumption DOUBLE DEFAULT 0; UPDATE ${T("raw")} SET consumption = production + imports - exports`);
 
