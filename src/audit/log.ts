@@ -57,29 +57,35 @@ export class AuditLog {
   async check(c: CheckSpec): Promise<CheckResult> {
     const fail = c.failWhen ?? "abs(observed - expected) > tolerance";
     const tmp = "__cairn_audit_items";
-    await this.s.run(`CREATE OR REPLACE TEMP TABLE ${tmp} AS
-      SELECT keys, CAST(year AS INTEGER) AS year, CAST(observed AS DOUBLE) AS observed, CAST(expected AS DOUBLE) AS expected,
+    // The numbers of every item first; keys and message (a map and a text per item, the
+    // costly part) are not selected, so the engine does not compute them for passing items.
+    const items = (cols: string) => `SELECT ${cols}, CAST(year AS INTEGER) AS year, CAST(observed AS DOUBLE) AS observed, CAST(expected AS DOUBLE) AS expected,
              CAST(observed AS DOUBLE) - CAST(expected AS DOUBLE) AS residual, CAST(tolerance AS DOUBLE) AS tolerance,
-             CAST(message AS VARCHAR) AS message, coalesce((${fail}), TRUE) AS __fail
-      FROM (${c.items})`);
+             coalesce((${fail}), TRUE) AS __fail
+      FROM (${c.items})`;
+    await this.s.run(`CREATE OR REPLACE TEMP TABLE ${tmp} AS ${items("NULL AS __none")}`);
     const head = `${this.stepIndex}, ${lit(c.step)}, ${lit(c.check)}, ${lit(c.severity)}`;
-    await this.s.run(`INSERT INTO ${AUDIT_TABLE}
-      SELECT ${head}, 'fail', keys, year, observed, expected, residual, tolerance, coalesce(message, ${lit(c.failMessage)})
-      FROM ${tmp} WHERE __fail`);
     const r = await this.s.one(`SELECT count(*) AS n, count(*) FILTER (WHERE __fail) AS f,
       max(abs(residual)) FILTER (WHERE NOT __fail) AS worst FROM ${tmp}`);
-    const items = Number(r.n);
+    const n = Number(r.n);
     const failed = Number(r.f);
-    await this.s.run(`INSERT INTO ${AUDIT_TABLE} VALUES (${head}, 'pass', MAP {}, NULL, ${items - failed}, ${items}, ${
+    if (failed > 0) {
+      // Failing items with their keys and message: the items query again, for them only.
+      await this.s.run(`CREATE OR REPLACE TEMP TABLE ${tmp} AS SELECT * FROM (${items("keys, CAST(message AS VARCHAR) AS message")}) WHERE __fail`);
+      await this.s.run(`INSERT INTO ${AUDIT_TABLE}
+        SELECT ${head}, 'fail', keys, year, observed, expected, residual, tolerance, coalesce(message, ${lit(c.failMessage)})
+        FROM ${tmp}`);
+    }
+    await this.s.run(`INSERT INTO ${AUDIT_TABLE} VALUES (${head}, 'pass', MAP {}, NULL, ${n - failed}, ${n}, ${
       r.worst === null ? "NULL" : lit(Number(r.worst))
-    }, NULL, ${lit(`${items} items checked, ${items - failed} passed, ${failed} failed`)})`);
+    }, NULL, ${lit(`${n} items checked, ${n - failed} passed, ${failed} failed`)})`);
     if (failed > 0 && c.severity === "error") {
-      const ex = await this.s.one(`SELECT CAST(keys AS VARCHAR) AS k, year, coalesce(message, ${lit(c.failMessage)}) AS m FROM ${tmp} WHERE __fail
+      const ex = await this.s.one(`SELECT CAST(keys AS VARCHAR) AS k, year, coalesce(message, ${lit(c.failMessage)}) AS m FROM ${tmp}
         ORDER BY CAST(keys AS VARCHAR), year LIMIT 1`);
       this.failedErrors.push({ step: c.step, check: c.check, failed, example: `${ex.k}${ex.year == null ? "" : ` year ${ex.year}`}: ${ex.m}` });
     }
     await this.s.run(`DROP TABLE ${tmp}`);
-    return { check: c.check, severity: c.severity, items, failed };
+    return { check: c.check, severity: c.severity, items: n, failed };
   }
 
   /** One free-standing audit row (e.g. a rejected-rows count). */

@@ -78,10 +78,12 @@ export const apparentConsumptionStep = defineStep({
     await ctx.audits.check({
       step: id, check: "trade-asymmetry", severity: a.asymmetry_severity,
       items: `WITH p AS (
-          SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
-            CAST(commodity AS VARCHAR) AS commodity, year,
-            ${exactSum("CASE WHEN flow = 'import' THEN quantity END")} AS m, ${exactSum("CASE WHEN flow = 'export' THEN quantity END")} AS x
-          FROM ${T("trade")} WHERE NOT mirrored GROUP BY ALL HAVING count(*) FILTER (WHERE flow = 'import') > 0 AND count(*) FILTER (WHERE flow = 'export') > 0)
+          SELECT importer, exporter, commodity, year,
+            ${exactTotal("CASE WHEN flow = 'import' THEN __units END")} AS m, ${exactTotal("CASE WHEN flow = 'export' THEN __units END")} AS x
+          FROM (SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
+                  CAST(commodity AS VARCHAR) AS commodity, year, flow, ${exactUnits("quantity")} AS __units
+                FROM ${T("trade")} WHERE NOT mirrored)
+          GROUP BY importer, exporter, commodity, year HAVING bool_or(flow = 'import') AND bool_or(flow = 'export'))
         SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
           m AS observed, x AS expected, ${a.asymmetry_threshold} * greatest(abs(m), abs(x)) AS tolerance,
           'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(a.asymmetry_threshold * 100))} || ' %' AS message
