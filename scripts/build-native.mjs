@@ -1,0 +1,47 @@
+// Builds the optional native hand-off reader (native/handoff.c → build/cairn_handoff.node)
+// with the C compiler and Node's own headers, linked to the libduckdb.so that
+// @duckdb/node-bindings ships. Run by `npm ci` / `npm install` (prepare) and `npm run build`.
+// It never fails the install: without a compiler, headers or a matching DuckDB library it
+// says why and the hand-off uses the bindings' per-chunk calls instead (slower, same result).
+import { execFileSync } from "node:child_process";
+import { existsSync, mkdirSync, rmSync } from "node:fs";
+import { createRequire } from "node:module";
+import path from "node:path";
+
+const root = path.resolve(path.dirname(new URL(import.meta.url).pathname), "..");
+const out = path.join(root, "build", "cairn_handoff.node");
+const say = (m) => process.stderr.write(`build-native: ${m}\n`);
+
+function headers() {
+  const dirs = [process.env.npm_config_nodedir, path.join(path.dirname(process.execPath), "..")].filter(Boolean).map((d) => path.join(d, "include", "node"));
+  return dirs.find((d) => existsSync(path.join(d, "node_api.h")));
+}
+
+function duckdbLibDir() {
+  try {
+    const require = createRequire(path.join(root, "package.json"));
+    const pkg = require.resolve(`@duckdb/node-bindings-${process.platform}-${process.arch}/package.json`);
+    const dir = path.dirname(pkg);
+    return existsSync(path.join(dir, "libduckdb.so")) ? dir : undefined;
+  } catch {
+    return undefined;
+  }
+}
+
+rmSync(out, { force: true });
+const inc = headers();
+const lib = duckdbLibDir();
+if (process.env.CAIRN_NATIVE === "0") say("CAIRN_NATIVE=0: not built");
+else if (!inc) say("Node's headers (node_api.h) not found; not built, the hand-off uses the bindings' calls");
+else if (!lib) say(`no libduckdb.so for ${process.platform}-${process.arch} in @duckdb/node-bindings; not built, the hand-off uses the bindings' calls`);
+else {
+  mkdirSync(path.dirname(out), { recursive: true });
+  const cc = process.env.CC ?? "cc";
+  try {
+    execFileSync(cc, ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "handoff.c"), "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
+    say(`built ${path.relative(root, out)}`);
+  } catch (e) {
+    rmSync(out, { force: true });
+    say(`${cc} failed (${e.message.split("\n")[0]}); not built, the hand-off uses the bindings' calls`);
+  }
+}

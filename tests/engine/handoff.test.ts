@@ -1,0 +1,57 @@
+import { describe, expect, it } from "vitest";
+import { existsSync } from "node:fs";
+import path from "node:path";
+import { Session } from "../../src/engine/session.js";
+import { nativeReader, readColumns, useNativeReader, writeColumns } from "../../src/engine/handoff.js";
+import { ROOT } from "../helpers.js";
+
+const N = 5000; // more than two DuckDB chunks (2048 rows each)
+
+async function reference(s: Session, sql: string): Promise<unknown[][]> {
+  // node-api's own row reader: an independent path from the chunk copies under test
+  return (await s.conn.runAndReadAll(sql)).getRows();
+}
+
+describe("hand-off between DuckDB and typed arrays", () => {
+  for (const native of [true, false]) {
+    it(`reads DOUBLE and INTEGER columns, in order, ${native ? "with the native reader" : "through the bindings"}`, async () => {
+      if (native && !nativeReader()) return; // not built on this machine: the other case covers the path used
+      useNativeReader(native);
+      const s = await Session.open();
+      try {
+        const sql = `SELECT CAST(i AS DOUBLE) / 7 AS v, CAST(i * 3 - 100 AS INTEGER) AS k FROM range(${N}) t(i) ORDER BY i`;
+        const r = await readColumns(s, sql, ["f64", "i32"]);
+        const ref = await reference(s, sql);
+        expect(r.rows).toBe(N);
+        for (let i = 0; i < N; i++) {
+          expect(r.columns[0]![i]).toBe(ref[i]![0]);
+          expect(r.columns[1]![i]).toBe(ref[i]![1]);
+        }
+        await expect(readColumns(s, `SELECT CASE WHEN i = 4321 THEN NULL ELSE 1.5 END::DOUBLE FROM range(${N}) t(i)`, ["f64"]))
+          .rejects.toThrow("hand-off: column 0 holds NULLs");
+        await expect(readColumns(s, "SELECT 1::BIGINT", ["i32"])).rejects.toThrow("not INTEGER");
+      } finally {
+        s.close();
+        useNativeReader(true);
+      }
+    });
+  }
+
+  it.runIf(existsSync(path.join(ROOT, "build", "cairn_handoff.node")))("the native reader, built at install, loads", () => {
+    expect(nativeReader()).not.toBeNull();
+  });
+
+  it("writes typed arrays back as a table", async () => {
+    const s = await Session.open();
+    try {
+      const a = Int32Array.from({ length: N }, (_, i) => i % 97);
+      const v = Float64Array.from({ length: N }, (_, i) => i * 0.25);
+      await writeColumns(s, "t", [{ name: "a", kind: "i32", data: a }, { name: "v", kind: "f64", data: v }], N);
+      const rows = await reference(s, "SELECT a, v FROM t");
+      expect(rows.length).toBe(N);
+      expect(rows.every((r, i) => r[0] === a[i] && r[1] === v[i])).toBe(true);
+    } finally {
+      s.close();
+    }
+  });
+});
