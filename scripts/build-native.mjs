@@ -4,7 +4,7 @@
 // It never fails the install: without a compiler, headers or a matching DuckDB library it
 // says why and the hand-off uses the bindings' per-chunk calls instead (slower, same result).
 import { execFileSync } from "node:child_process";
-import { existsSync, mkdirSync, rmSync } from "node:fs";
+import { existsSync, mkdirSync, readFileSync, rmSync, writeFileSync } from "node:fs";
 import { createRequire } from "node:module";
 import path from "node:path";
 
@@ -28,7 +28,14 @@ function duckdbLibDir() {
   }
 }
 
+/** The version of @duckdb/node-bindings whose handle layout the library is built for. */
+function bindingsVersion() {
+  const require = createRequire(path.join(root, "package.json"));
+  return JSON.parse(readFileSync(require.resolve("@duckdb/node-bindings/package.json"), "utf8")).version;
+}
+
 rmSync(out, { force: true });
+rmSync(`${out}.json`, { force: true });
 const inc = headers();
 const lib = duckdbLibDir();
 if (process.env.CAIRN_NATIVE === "0") say("CAIRN_NATIVE=0: not built");
@@ -39,9 +46,17 @@ else {
   const cc = process.env.CC ?? "cc";
   try {
     execFileSync(cc, ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "handoff.c"), "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
+    writeFileSync(`${out}.json`, JSON.stringify({ bindings: bindingsVersion(), node: process.version }) + "\n");
     say(`built ${path.relative(root, out)}`);
   } catch (e) {
-    rmSync(out, { force: true });
+    /** The version of @duckdb/node-bindings whose handle layout the library is built for. */
+function bindingsVersion() {
+  const require = createRequire(path.join(root, "package.json"));
+  return JSON.parse(readFileSync(require.resolve("@duckdb/node-bindings/package.json"), "utf8")).version;
+}
+
+rmSync(out, { force: true });
+rmSync(`${out}.json`, { force: true });
     say(`${cc} failed (${e.message.split("\n")[0]}); not built, the hand-off uses the bindings' calls`);
   }
 }

@@ -9,7 +9,8 @@
  */
 import { DOUBLE, DuckDBDataChunk, INTEGER, type DuckDBType } from "@duckdb/node-api";
 import duckdb from "@duckdb/node-bindings";
-import { existsSync } from "node:fs";
+import { existsSync, readFileSync } from "node:fs";
+import { availableParallelism } from "node:os";
 import { createRequire } from "node:module";
 import type { Session } from "./session.js";
 import { ident } from "./sql.js";
@@ -19,6 +20,7 @@ const BYTES: Record<ColumnKind, number> = { f64: 8, i32: 4 };
 
 interface NativeReader {
   copyColumns(result: duckdb.Result, targets: (Float64Array | Int32Array)[], widths: number[]): number;
+  appendColumns(db: duckdb.Database, table: string, sources: (Float64Array | Int32Array)[], widths: number[], rows: number, threads: number): number;
 }
 
 let native: NativeReader | null | undefined;
@@ -34,7 +36,11 @@ export function nativeReader(): NativeReader | null {
     const file = new URL("../../build/cairn_handoff.node", import.meta.url);
     if (process.env.CAIRN_NATIVE !== "0" && existsSync(file)) {
       try {
-        native = createRequire(import.meta.url)(file.pathname) as NativeReader;
+        // Only for the bindings it was built against: it reads their handles.
+        const require = createRequire(import.meta.url);
+        const built = JSON.parse(readFileSync(`${file.pathname}.json`, "utf8")) as { bindings: string };
+        const installed = JSON.parse(readFileSync(require.resolve("@duckdb/node-bindings/package.json"), "utf8")) as { version: string };
+        if (built.bindings === installed.version) native = require(file.pathname) as NativeReader;
       } catch {
         native = null; // built for another Node or DuckDB: the bindings' path works the same
       }
@@ -109,10 +115,21 @@ export interface OutColumn {
   data: Float64Array | Int32Array;
 }
 
-/** Creates `table` with the given columns (unless `create: false`) and appends `rows` rows from the typed arrays. */
-export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean } = {}): Promise<void> {
+/**
+ * Creates `table` with the given columns (unless `create: false`) and appends `rows` rows from
+ * the typed arrays. With `keepOrder: false` (for tables read with ORDER BY or aggregated) the
+ * native hand-off appends row ranges from several threads at once, and the table's row order
+ * is not that of the arrays.
+ */
+export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean; keepOrder?: boolean } = {}): Promise<void> {
   if (opts.create !== false) {
     await s.run(`CREATE OR REPLACE TABLE ${ident(table)} (${columns.map((c) => `${ident(c.name)} ${c.kind === "f64" ? "DOUBLE" : "INTEGER"}`).join(", ")})`);
+  }
+  const nat = opts.keepOrder === false ? nativeReader() : null;
+  if (nat) {
+    const db = (s.instance as unknown as { db: duckdb.Database }).db;
+    nat.appendColumns(db, table, columns.map((c) => c.data), columns.map((c) => BYTES[c.kind]), rows, availableParallelism());
+    return;
   }
   const appender = await s.conn.createAppender(table);
   const types: DuckDBType[] = columns.map((c) => (c.kind === "f64" ? DOUBLE : INTEGER));

@@ -77,7 +77,7 @@ export class ByCohortWriter {
     await writeColumns(this.s, tmp, [
       { name: "sid", kind: "i32", data: this.sid }, { name: "ci", kind: "i32", data: this.ci }, { name: "yi", kind: "i32", data: this.yi },
       { name: "inflow", kind: "f64", data: this.inflow }, { name: "outflow", kind: "f64", data: this.outflow }, { name: "stock", kind: "f64", data: this.stock },
-    ], this.used);
+    ], this.used, { keepOrder: false }); // copied out with ORDER BY
     const file = path.join(this.outDir, `part-${String(this.part).padStart(5, "0")}.parquet`);
     await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(r.ci + ${this.y0} AS INTEGER) AS cohort, CAST(r.yi + ${this.y0} AS INTEGER) AS year,
         r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit

@@ -399,7 +399,7 @@ async function runCohortModel(ctx: StepContext, o: O) {
     ...(out.unmet ? [{ name: "unmet_stock_change", kind: "f64" as const, data: out.unmet }] : []),
   ];
   const raw = `__${o.id}_raw`;
-  await writeColumns(s, raw, cols, n * T);
+  await writeColumns(s, raw, cols, n * T, { keepOrder: false }); // read back with ORDER BY
   const sidT = ident(`__${o.id}_sid`);
   const nanToNull = (c: string) => `CASE WHEN isnan(r.${c}) THEN NULL ELSE r.${c} END AS ${c}`;
   const extra = o.mode === "stock-driven"
