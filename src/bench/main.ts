@@ -72,10 +72,10 @@ async function main(): Promise<void> {
   const lines = [
     `stage        size                                  median      throughput                 peak RSS`,
     `table        ${t.table_rows} trade + ${t.production_rows} production rows   ${fmt(Number(t.table_stage_s))} s   ${fmt(Number(t.table_rows_per_s))} rows/s; hand-written SQL ${fmt(Number(t.table_raw_duckdb_s))} s (ratio ${Number(t.table_stage_ratio).toFixed(2)})   ${gb(Number(t.peak_rss_bytes))}`,
-    `inflow       ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.inflow_driven_s))} s   ${fmt(Number(c.inflow_driven_cells_per_s))} cells/s   ${gb(Number(c.peak_rss_bytes))}`,
+    `inflow       ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.inflow_driven_s))} s   ${fmt(Number(c.inflow_driven_cells_per_s))} cells/s   ${gb(Number(c.peak_rss_bytes))} (${c.cohort_kernels})`,
     `stock        ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.stock_driven_s))} s   ${fmt(Number(c.stock_driven_cells_per_s))} cells/s (round trip max rel. error ${fmt(Number(c.round_trip_max_rel_error))})`,
     `composition  ${c.cohort_series} series × ${c.cohort_years} years × 3   ${fmt(Number(c.composition_s))} s   ${fmt(Number(c.composition_cells_per_s))} cells/s`,
-    `hand-off     ${h.handoff_values} values                      read ${fmt(Number(h.handoff_read_values_per_s))} values/s, write ${fmt(Number(h.handoff_write_rows_per_s))} rows/s   ${gb(Number(h.peak_rss_bytes))}`,
+    `hand-off     ${h.handoff_values} values                      read ${fmt(Number(h.handoff_read_values_per_s))} values/s, write ${fmt(Number(h.handoff_write_rows_per_s))} rows/s (${h.handoff_native})   ${gb(Number(h.peak_rss_bytes))}`,
     `by-cohort    ${b.by_cohort_series} series × ${b.by_cohort_years} years → ${b.by_cohort_rows} rows   ${fmt(Number(b.by_cohort_s))} s   ${fmt(Number(b.by_cohort_rows_per_s))} rows/s   ${gb(Number(b.peak_rss_bytes))}`,
   ];
   if (scaling.length) {
@@ -88,6 +88,7 @@ async function main(): Promise<void> {
     cohort_series: c.cohort_series, cohort_years: c.cohort_years,
     inflow_driven_cells_per_s: c.inflow_driven_cells_per_s, stock_driven_cells_per_s: c.stock_driven_cells_per_s, composition_cells_per_s: c.composition_cells_per_s,
     handoff_read_values_per_s: h.handoff_read_values_per_s, handoff_write_rows_per_s: h.handoff_write_rows_per_s,
+    cohort_kernels: c.cohort_kernels, handoff_path: h.handoff_native,
     by_cohort_rows: b.by_cohort_rows, by_cohort_peak_rss_bytes: b.peak_rss_bytes,
     peak_rss_bytes: Math.max(...results.map((r) => Number(r.peak_rss_bytes))),
     table_peak_rss_bytes: t.peak_rss_bytes, audit_errors: t.audit_errors,

@@ -6,7 +6,9 @@ import { loadPipeline } from "../spec/load.js";
 import { runPipeline } from "../run/runner.js";
 import { Session } from "../engine/session.js";
 import { lit } from "../engine/sql.js";
-import { readColumns, writeColumns } from "../engine/handoff.js";
+import { nativeReader, readColumns, writeColumns } from "../engine/handoff.js";
+import { wasmKernels } from "../cohort/kernels.js";
+import { kernelVariant } from "../cohort/wasm/index.js";
 import { CohortGroup, curveOf, makeLifetime, type ModelResult } from "../cohort/index.js";
 import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
 import { KernelArena } from "../cohort/arena.js";
@@ -159,6 +161,7 @@ export async function cohortStage(series: number, years: number, groups: number,
     inflow_driven_s: median(inflowT), stock_driven_s: median(stockT), composition_s: median(compT),
     inflow_driven_cells_per_s: cells / median(inflowT), stock_driven_cells_per_s: cells / median(stockT),
     composition_cells_per_s: cells / median(compT), round_trip_max_rel_error: maxErr,
+    cohort_kernels: `${wasmKernels() ? `WebAssembly ${kernelVariant()}` : "TypeScript"}, ${pool.size} worker threads, in place in the cohort arena`,
   };
 }
 
@@ -182,7 +185,7 @@ export async function handoffStage(values: number, runs: number): Promise<StageR
   const sum = (x: ArrayLike<number>) => { let t = 0; for (let i = 0; i < x.length; i++) t += x[i]!; return t; };
   if (Number(chk!.n) !== values || Number(chk!.sa) !== sum(a) || Number(chk!.sb) !== sum(b) || Number(chk!.sv) !== sum(v)) throw new Error("hand-off write mismatch");
   s.close();
-  return { stage: "handoff", handoff_values: values, handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
+  return { stage: "handoff", handoff_values: values, handoff_native: nativeReader() ? "native reader and parallel append" : "bindings' calls", handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
 }
 
 /** Cohort-resolved output through the pipeline step: inflow for S series × Y years, by_cohort: true. */
