@@ -28,7 +28,9 @@ function median(xs: number[]): number {
   return s[Math.floor(s.length / 2)]!;
 }
 
-async function timed(runs: number, f: () => Promise<void> | void, progress?: (i: number, t: number) => void): Promise<number[]> {
+/** Runs f `warmup` times untimed (compilation, first touch of memory), then `runs` times timed. */
+async function timed(runs: number, f: () => Promise<void> | void, progress?: (i: number, t: number) => void, warmup = 0): Promise<number[]> {
+  for (let i = 0; i < warmup; i++) await f();
   const out: number[] = [];
   for (let i = 0; i < runs; i++) {
     const t0 = performance.now();
@@ -129,13 +131,13 @@ export async function cohortStage(series: number, years: number, groups: number,
   const inflowT = await timed(runs, async () => {
     recycle(...last.map((r) => ({ outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
     last = await runTasks(w.groups.map((g, i) => taskFor("inflow", g.group, slices[i]!, g.n)), pool);
-  }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`));
+  }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`), 1);
   const fromInflow = last;
   last = [];
   const stockT = await timed(runs, async () => {
     recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
     last = await runTasks(w.groups.map((g, gi) => taskFor("stock", g.group, fromInflow[gi]!.stock, g.n)), pool);
-  }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`));
+  }, (i, t) => say(`stock-driven run ${i}/${runs}: ${t.toFixed(2)} s`), 1);
   // The stock-driven model on the inflow-driven stock must give the inflow back.
   let maxErr = 0;
   last.forEach((r, gi) => {
@@ -154,7 +156,7 @@ export async function cohortStage(series: number, years: number, groups: number,
   const compT = await timed(runs, async () => {
     recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
     last = await runTasks(w.groups.map((g, i) => taskFor("composition", g.group, slices[i]!, g.n, { content: contents[i]!, M })), pool);
-  }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`));
+  }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`), 1);
   await CohortPool.closeShared();
   return {
     stage: "cohort", cohort_series: series, cohort_years: years, cohort_groups: groups, cells_per_run: cells,

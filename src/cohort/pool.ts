@@ -74,9 +74,11 @@ type Pending = { task: ArenaTask; resolve: (r: TaskExtras) => void; reject: (e: 
 export class CohortPool {
   private static instance: CohortPool | null = null;
   private readonly workers: Worker[] = [];
-  private readonly idle: Worker[] = [];
   private readonly queue: Pending[] = [];
-  private readonly busy = new Map<Worker, Pending>();
+  /** Tasks sent to each worker and not answered yet, in order (a worker answers in order). */
+  private readonly sent = new Map<Worker, Pending[]>();
+  /** Tasks in flight per worker: the next one waits in the worker's queue, so it never idles between tasks. */
+  private static readonly DEPTH = 2;
 
   /** The process-wide pool (size: CAIRN_WORKERS, default the number of cores). */
   static shared(): CohortPool {
@@ -96,20 +98,17 @@ export class CohortPool {
     for (let i = 0; i < size; i++) {
       const w = new Worker(workerFile(), { workerData: { arena: KernelArena.shared().memory } });
       w.unref();
+      this.sent.set(w, []);
       w.on("message", (msg: { ok: boolean; result?: TaskExtras; error?: string }) => {
-        const p = this.busy.get(w)!;
-        this.busy.delete(w);
+        const p = this.sent.get(w)!.shift()!;
         if (msg.ok) p.resolve(msg.result!);
         else p.reject(new Error(msg.error));
-        this.idle.push(w);
         this.pump();
       });
       w.on("error", (e) => {
-        const p = this.busy.get(w);
-        if (p) p.reject(e);
+        for (const p of this.sent.get(w)!.splice(0)) p.reject(e);
       });
       this.workers.push(w);
-      this.idle.push(w);
     }
   }
 
@@ -121,14 +120,21 @@ export class CohortPool {
   }
 
   private pump(): void {
-    while (this.idle.length && this.queue.length) {
-      const w = this.idle.pop()!;
+    // Fill the least loaded worker first, up to DEPTH tasks each.
+    for (;;) {
+      if (!this.queue.length) break;
+      let best: Worker | null = null;
+      for (const w of this.workers) {
+        const n = this.sent.get(w)!.length;
+        if (n < CohortPool.DEPTH && (!best || n < this.sent.get(best)!.length)) best = w;
+      }
+      if (!best) break;
       const p = this.queue.shift()!;
-      this.busy.set(w, p);
-      w.ref();
-      w.postMessage(p.task);
+      this.sent.get(best)!.push(p);
+      best.ref();
+      best.postMessage(p.task);
     }
-    if (this.busy.size === 0) for (const w of this.workers) w.unref();
+    for (const w of this.workers) if (this.sent.get(w)!.length === 0) w.unref();
   }
 
   async close(): Promise<void> {
