@@ -80,7 +80,8 @@ export class KernelArena {
    * A lifetime group's matrices in the arena: survival S, leaving P with its panel layout for
    * the product kernel, and (stock-driven) the transposed survival St. Made once per group and
    * kept while they fit the cache budget (256 MiB by default, CAIRN_ARENA_CACHE_MB); pinned
-   * until `unpin` so that no running task loses them.
+   * until `unpin` so that no running task loses them. Keyed by the P array itself: a group's
+   * matrices are taken as fixed once made (CohortGroup never changes them).
    */
   groupMatrices(T: number, S: Float64Array, P: Float64Array, St: Float64Array | null): GroupMatrices {
     let e = this.groups.get(P);
@@ -116,7 +117,7 @@ export class KernelArena {
 
   /** True for a whole block of this arena (an array from alloc, not a part of one). */
   owns(a: Float64Array): boolean {
-    return inArena(a) && this.sizes.has(a.byteOffset) && Math.ceil((a.length * 8) / ALIGN) * ALIGN <= this.sizes.get(a.byteOffset)!;
+    return inArena(a) && this.sizes.get(a.byteOffset) === Math.max(ALIGN, Math.ceil((a.length * 8) / ALIGN) * ALIGN);
   }
 
   /** Hands a block back for reuse. */

@@ -105,9 +105,17 @@ export class CohortPool {
         else p.reject(new Error(msg.error));
         this.pump();
       });
-      w.on("error", (e) => {
+      // A worker that dies takes its tasks with it: they fail, and it gets no more.
+      const dead = (e: Error) => {
+        const i = this.workers.indexOf(w);
+        if (i < 0) return;
+        this.workers.splice(i, 1);
         for (const p of this.sent.get(w)!.splice(0)) p.reject(e);
-      });
+        if (this.workers.length === 0) for (const p of this.queue.splice(0)) p.reject(new Error(`cohort worker threads failed: ${e.message}`));
+        this.pump();
+      };
+      w.on("error", dead);
+      w.on("exit", (code) => dead(new Error(`a cohort worker thread stopped (exit code ${code})`)));
       this.workers.push(w);
     }
   }
@@ -138,7 +146,8 @@ export class CohortPool {
   }
 
   async close(): Promise<void> {
-    await Promise.all(this.workers.map((w) => w.terminate()));
+    const ws = this.workers.splice(0);
+    await Promise.all(ws.map((w) => w.terminate()));
   }
 }
 
@@ -169,6 +178,7 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
   const temporary: Float64Array[] = [];
   const jobs: Promise<void>[] = [];
   const pinned: Float64Array[] = [];
+  const owned: Float64Array[] = []; // result arrays made here (not the caller's inputs)
   try {
     tasks.forEach((t, ti) => {
       const per = t.kind === "composition" ? t.M ?? 1 : 1;
@@ -190,6 +200,8 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
         inflow: t.kind === "inflow" ? values : arena.alloc(rows * T),
         outflow: arena.alloc(rows * T), stock: arena.alloc(rows * T), stockChange: arena.alloc(rows * T),
       };
+      owned.push(r.outflow, r.stock, r.stockChange);
+      if (r.inflow !== t.values) owned.push(r.inflow);
       const extras: (typeof EXTRAS)[number][] = [];
       if (t.indicators) extras.push("meanAgeStock", "meanAgeOutflow");
       if (t.kind === "stock" && t.clamp) extras.push("unmet");
@@ -213,6 +225,10 @@ export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()):
       }
     });
     await Promise.all(jobs);
+  } catch (e) {
+    await Promise.allSettled(jobs);
+    for (const a of owned) arena.release(a);
+    throw e;
   } finally {
     await Promise.allSettled(jobs);
     for (const a of temporary) arena.release(a);

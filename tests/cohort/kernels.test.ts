@@ -137,6 +137,22 @@ describe("worker pool gives the same results as the main thread", () => {
     }
   });
 
+  it("a task that fails in a worker rejects with its message, and the pool goes on working", async () => {
+    const T = 12, n = 8;
+    const bad = CohortGroup.fromMatrices(T, new Float64Array(T * T), new Float64Array(T * T), null); // σ(0) = 0
+    const lt = makeLifetime({ distribution: "normal", mean: 6, sd: 2 }, "t");
+    const good = new CohortGroup(T, Array(T).fill(curveOf(lt, T + 1)));
+    const I = new Float64Array(n * T).fill(1);
+    const pool = new CohortPool(2);
+    try {
+      await expect(runTasks([taskFor("stock", bad, I, n)], pool)).rejects.toThrow("σ(0) = 0");
+      const [a] = await runTasks([taskFor("inflow", good, I, n)], pool);
+      expect(Array.from(a!.stock)).toEqual(Array.from(inflowDriven(good, I, n).stock));
+    } finally {
+      await pool.close();
+    }
+  });
+
   it("with an initial stock, indicators and clamp, and series counts that are not multiples of 4", async () => {
     const T = 45, n = 37;
     const lt = makeLifetime({ distribution: "weibull", shape: 2, scale: 14 }, "t");
