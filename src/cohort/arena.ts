@@ -1,9 +1,11 @@
 /**
  * The cohort arena: one shared WebAssembly memory in which the worker threads compute in place.
  * Inputs are copied in once (or allocated here by the caller), results are views of it, and
- * nothing is copied between threads. Only the main thread allocates; freed blocks are kept
- * for reuse by later requests of the same size (touching fresh memory costs a page fault per
- * 4 KiB, which costs about as much as the kernel itself).
+ * nothing is copied between threads. Only the main thread allocates. Freed blocks are kept for
+ * reuse (touching fresh memory costs a page fault per 4 KiB, which costs about as much as the
+ * kernel itself): best fit among free blocks, split to size, merged with free neighbours, and
+ * the top of the arena lowered when its last block is freed, so requests of changing sizes do
+ * not make it grow without end.
  */
 import { MAX_PAGES, arenaView, attachArena, inArena, newKernelMemory, packPanels, panelLength, registerPanels } from "./wasm/index.js";
 
@@ -22,8 +24,8 @@ export class KernelArena {
   readonly memory: WebAssembly.Memory;
   /** Next free byte; the first 64 bytes stay unused, so that offset 0 means "none" to the kernels. */
   private top = ALIGN;
-  private readonly sizes = new Map<number, number>(); // offset → bytes of a live or free block
-  private readonly free = new Map<number, number[]>(); // bytes → free offsets
+  private readonly live = new Map<number, number>(); // offset → bytes of a block in use
+  private free: { off: number; bytes: number }[] = []; // free blocks below top, by offset
   private readonly groups = new Map<Float64Array, { m: GroupMatrices; pins: number; bytes: number }>();
   private cachedBytes = 0;
   private readonly cacheBudget = Number(process.env.CAIRN_ARENA_CACHE_MB ?? 256) * 2 ** 20;
@@ -44,17 +46,36 @@ export class KernelArena {
     attachArena(this.memory);
   }
 
-  /** Bytes in use or kept for reuse. */
+  /** Bytes from the start to the top of the arena (in use or free below the top). */
   get reservedBytes(): number {
     return this.top;
+  }
+
+  /** Bytes in blocks in use. */
+  get liveBytes(): number {
+    let n = 0;
+    for (const b of this.live.values()) n += b;
+    return n;
   }
 
   /** A Float64Array of `len` doubles in the arena (contents undefined). */
   alloc(len: number): Float64Array {
     const bytes = Math.max(ALIGN, Math.ceil((len * 8) / ALIGN) * ALIGN);
-    const reuse = this.free.get(bytes);
-    let off = reuse?.pop();
-    if (off === undefined) {
+    let best = -1;
+    for (let i = 0; i < this.free.length; i++) {
+      const f = this.free[i]!;
+      if (f.bytes >= bytes && (best < 0 || f.bytes < this.free[best]!.bytes)) best = i;
+    }
+    let off: number;
+    if (best >= 0) {
+      const f = this.free[best]!;
+      off = f.off;
+      if (f.bytes === bytes) this.free.splice(best, 1);
+      else {
+        f.off += bytes;
+        f.bytes -= bytes;
+      }
+    } else {
       off = this.top;
       const end = off + bytes;
       if (end > MAX_PAGES * 65536) {
@@ -63,8 +84,8 @@ export class KernelArena {
       const have = this.memory.buffer.byteLength;
       if (end > have) this.memory.grow(Math.ceil((end - have) / 65536));
       this.top = end;
-      this.sizes.set(off, bytes);
     }
+    this.live.set(off, bytes);
     return arenaView(off, len);
   }
 
@@ -115,17 +136,35 @@ export class KernelArena {
     }
   }
 
-  /** True for a whole block of this arena (an array from alloc, not a part of one). */
+  /** True for a whole block of this arena in use (an array from alloc, not a part of one). */
   owns(a: Float64Array): boolean {
-    return inArena(a) && this.sizes.get(a.byteOffset) === Math.max(ALIGN, Math.ceil((a.length * 8) / ALIGN) * ALIGN);
+    return inArena(a) && this.live.get(a.byteOffset) === Math.max(ALIGN, Math.ceil((a.length * 8) / ALIGN) * ALIGN);
   }
 
-  /** Hands a block back for reuse. */
+  /** Hands a block back for reuse (anything else is ignored). */
   release(a: Float64Array): void {
     if (!this.owns(a)) return;
-    const bytes = this.sizes.get(a.byteOffset)!;
-    const l = this.free.get(bytes) ?? [];
-    if (!l.includes(a.byteOffset)) l.push(a.byteOffset);
-    this.free.set(bytes, l);
+    const off = a.byteOffset;
+    const bytes = this.live.get(off)!;
+    this.live.delete(off);
+    // Insert by offset, then merge with the free neighbours.
+    let i = 0;
+    while (i < this.free.length && this.free[i]!.off < off) i++;
+    this.free.splice(i, 0, { off, bytes });
+    if (i + 1 < this.free.length && off + bytes === this.free[i + 1]!.off) {
+      this.free[i]!.bytes += this.free[i + 1]!.bytes;
+      this.free.splice(i + 1, 1);
+    }
+    if (i > 0 && this.free[i - 1]!.off + this.free[i - 1]!.bytes === off) {
+      this.free[i - 1]!.bytes += this.free[i]!.bytes;
+      this.free.splice(i, 1);
+      i--;
+    }
+    // A free block that ends at the top lowers the top (the memory stays, for the next blocks).
+    const last = this.free[this.free.length - 1];
+    if (last && last.off + last.bytes === this.top) {
+      this.top = last.off;
+      this.free.pop();
+    }
   }
 }

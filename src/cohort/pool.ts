@@ -167,9 +167,81 @@ export function recycle(...arrays: (Float64Array | undefined | null | object)[])
  * Runs many tasks over the pool; each task is split in parts (multiples of 4 series) so that
  * every worker has work. Inputs that are not already in the arena are copied there once;
  * results (inflow, outflow, stock, stock change) are arena arrays: pass them to `recycle`
- * when done with them, or they keep their memory until the process ends.
+ * when done with them, or they keep their memory until the process ends. A call that needs
+ * more arena than CAIRN_ARENA_BUDGET_MB (default 2048) runs in waves and returns ordinary
+ * arrays (recycle ignores them).
  */
 export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()): Promise<ModelResult[]> {
+  const budget = Number(process.env.CAIRN_ARENA_BUDGET_MB ?? 2048) * 2 ** 20;
+  if (tasks.reduce((a, t) => a + arenaBytes(t, t.n), 0) > budget) return runInWaves(tasks, pool, budget);
+  return runInArena(tasks, pool);
+}
+
+/** Arena bytes a task needs for `n` of its series: inputs copied in, and the four results. */
+function arenaBytes(t: CohortTask, n: number): number {
+  const per = t.kind === "composition" ? t.M ?? 1 : 1;
+  return 8 * t.T * n * (1 + 4 * per + (t.content ? per : 0) + (t.initial ? 3 : 0));
+}
+
+/** Series s0..s1 of a task, as a task of its own (views, no copies). */
+function sliceTask(t: CohortTask, s0: number, s1: number): CohortTask {
+  const per = t.kind === "composition" ? t.M ?? 1 : 1;
+  const rows = (a: Float64Array, width: number) => a.subarray(s0 * width, s1 * width);
+  const i = t.initial;
+  return {
+    ...t, n: s1 - s0, values: rows(t.values, t.T), content: t.content ? rows(t.content, per * t.T) : undefined,
+    initial: i ? { stock0: rows(i.stock0, 1), stock: rows(i.stock, t.T), ageSum: rows(i.ageSum, t.T), outAgeSum: rows(i.outAgeSum, t.T), tooOld: rows(i.tooOld, 1) } : i,
+  };
+}
+
+/**
+ * A call too large for the arena: the series run in waves that fit the budget, and each wave's
+ * results are copied out of the arena into ordinary arrays (one copy, which a call that fits
+ * does not pay) before the next wave reuses its memory.
+ */
+async function runInWaves(tasks: CohortTask[], pool: CohortPool, budget: number): Promise<ModelResult[]> {
+  const results: ModelResult[] = tasks.map((t) => {
+    const per = t.kind === "composition" ? t.M ?? 1 : 1;
+    const len = t.n * per * t.T;
+    const r: ModelResult = { inflow: t.kind === "inflow" ? t.values : new Float64Array(len), outflow: new Float64Array(len), stock: new Float64Array(len), stockChange: new Float64Array(len) };
+    if (t.indicators) { r.meanAgeStock = new Float64Array(len); r.meanAgeOutflow = new Float64Array(len); }
+    if (t.kind === "stock") { r.stockTarget = t.values; if (t.clamp) r.unmet = new Float64Array(len); }
+    if (t.initial) r.initialTooOld = t.initial.tooOld;
+    return r;
+  });
+  // Units of at most half the budget, gathered into waves of at most the budget.
+  type Unit = { ti: number; s0: number; s1: number };
+  const waves: Unit[][] = [[]];
+  let used = 0;
+  tasks.forEach((t, ti) => {
+    const perSeries = arenaBytes(t, 1);
+    const step = Math.max(4, Math.floor(budget / 2 / perSeries) & ~3);
+    for (let s0 = 0; s0 < t.n; s0 += step) {
+      const s1 = Math.min(t.n, s0 + step);
+      const b = perSeries * (s1 - s0);
+      if (used + b > budget && waves[waves.length - 1]!.length) { waves.push([]); used = 0; }
+      waves[waves.length - 1]!.push({ ti, s0, s1 });
+      used += b;
+    }
+  });
+  for (const wave of waves) {
+    const subs = wave.map((u) => sliceTask(tasks[u.ti]!, u.s0, u.s1));
+    const part = await runInArena(subs, pool);
+    wave.forEach((u, k) => {
+      const t = tasks[u.ti]!;
+      const at = u.s0 * (t.kind === "composition" ? t.M ?? 1 : 1) * t.T;
+      const r = results[u.ti]!, p = part[k]!;
+      for (const f of ["inflow", "outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow", "unmet"] as const) {
+        if (f === "inflow" && t.kind === "inflow") continue;
+        if (r[f] && p[f]) r[f]!.set(p[f]!, at);
+      }
+      recycle({ inflow: p.inflow !== subs[k]!.values ? p.inflow : undefined, outflow: p.outflow, stock: p.stock, stockChange: p.stockChange });
+    });
+  }
+  return results;
+}
+
+async function runInArena(tasks: CohortTask[], pool: CohortPool): Promise<ModelResult[]> {
   const arena = KernelArena.shared();
   const ref = (a: Float64Array): ArenaRef => [a.byteOffset, a.length];
   const totalSeries = tasks.reduce((a, t) => a + t.n, 0);

@@ -162,18 +162,58 @@ describe("worker pool gives the same results as the main thread", () => {
     const I = new Float64Array(n * T).map(() => 1 + rnd() * 9);
     const init = initialContribution({ byAge: null, total: new Float64Array(n).map(() => 100 + 50 * rnd()), A: 40, curves: Array(40).fill(cu) }, n, T);
     const pool = new CohortPool(2);
+    const budget = process.env.CAIRN_ARENA_BUDGET_MB;
     try {
-      const [a] = await runTasks([taskFor("inflow", g, I, n, { initial: init, indicators: true })], pool);
-      const b = inflowDriven(g, I, n, { initial: init, indicators: true });
-      for (const f of ["outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow"] as const) expect(Array.from(a![f]!), f).toEqual(Array.from(b[f]!));
-      // a falling target makes negative inflow: clamped to 0
-      const Z = new Float64Array(n * T).map((_, i) => 300 * Math.exp(-(i % T) / 8));
-      const [c] = await runTasks([taskFor("stock", g, Z, n, { initial: init, clamp: true, indicators: true })], pool);
-      const d = stockDriven(g, Z, n, { initial: init, clamp: true, indicators: true });
-      for (const f of ["inflow", "outflow", "stock", "unmet", "meanAgeStock"] as const) expect(Array.from(c![f]!), f).toEqual(Array.from(d[f]!));
-      expect(d.unmet!.some((x) => Math.abs(x) > 1e-9)).toBe(true);
+      for (const small of [false, true]) {
+        // small: a budget of 0.05 MiB makes the call run in waves of a few series each
+        if (small) process.env.CAIRN_ARENA_BUDGET_MB = "0.05";
+        const [a] = await runTasks([taskFor("inflow", g, I, n, { initial: init, indicators: true })], pool);
+        const b = inflowDriven(g, I, n, { initial: init, indicators: true });
+        for (const f of ["outflow", "stock", "stockChange", "meanAgeStock", "meanAgeOutflow"] as const) expect(Array.from(a![f]!), f).toEqual(Array.from(b[f]!));
+        // a falling target makes negative inflow: clamped to 0
+        const Z = new Float64Array(n * T).map((_, i) => 300 * Math.exp(-(i % T) / 8));
+        const [c] = await runTasks([taskFor("stock", g, Z, n, { initial: init, clamp: true, indicators: true })], pool);
+        const d = stockDriven(g, Z, n, { initial: init, clamp: true, indicators: true });
+        for (const f of ["inflow", "outflow", "stock", "unmet", "meanAgeStock"] as const) expect(Array.from(c![f]!), f).toEqual(Array.from(d[f]!));
+        expect(d.unmet!.some((x) => Math.abs(x) > 1e-9)).toBe(true);
+        expect(c!.inflow.buffer instanceof SharedArrayBuffer).toBe(!small); // waves return ordinary arrays
+      }
     } finally {
+      if (budget === undefined) delete process.env.CAIRN_ARENA_BUDGET_MB;
+      else process.env.CAIRN_ARENA_BUDGET_MB = budget;
       await pool.close();
     }
+  });
+});
+
+describe("the cohort arena's allocator", () => {
+  it("reuses freed blocks (best fit, split, merged), lowers its top, and frees only whole blocks", () => {
+    const arena = KernelArena.shared();
+    const top0 = arena.reservedBytes;
+    const live0 = arena.liveBytes;
+    // Requests of changing sizes, freed each round: the arena must not grow round after round.
+    let top1 = 0;
+    for (let round = 0; round < 20; round++) {
+      const blocks = [1000, 37, 5000 + round * 100, 64, 2048].map((n) => arena.alloc(n));
+      blocks.forEach((b, i) => b.fill(i + round));
+      blocks.forEach((b, i) => expect(b.every((x) => x === i + round)).toBe(true)); // no overlap
+      expect(arena.owns(blocks[0]!.subarray(0, 10))).toBe(false); // a part of a block is not a block
+      arena.release(blocks[0]!.subarray(0, 10));
+      expect(arena.owns(blocks[0]!)).toBe(true);
+      for (const b of [blocks[1], blocks[3], blocks[0], blocks[4], blocks[2]]) arena.release(b!);
+      if (round === 0) top1 = arena.reservedBytes;
+      expect(arena.reservedBytes).toBeLessThanOrEqual(Math.max(top1, top0));
+      expect(arena.liveBytes).toBe(live0);
+    }
+    // A freed block serves a smaller request (this one or a better fit): the arena does not grow.
+    const a = arena.alloc(4096), b = arena.alloc(16);
+    arena.release(a);
+    const top = arena.reservedBytes;
+    const c = arena.alloc(1000);
+    expect(arena.reservedBytes).toBe(top);
+    expect(c.byteOffset + c.byteLength).toBeLessThanOrEqual(top);
+    arena.release(b);
+    arena.release(c);
+    expect(arena.liveBytes).toBe(live0);
   });
 });
