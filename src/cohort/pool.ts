@@ -6,6 +6,7 @@
 import { availableParallelism } from "node:os";
 import { Worker } from "node:worker_threads";
 import { KernelArena } from "./arena.js";
+import { MAX_PAGES, inArena } from "./wasm/index.js";
 import type { CohortGroup, InitialContribution, ModelResult } from "./models.js";
 
 export type TaskKind = "inflow" | "stock" | "composition";
@@ -168,19 +169,24 @@ export function recycle(...arrays: (Float64Array | undefined | null | object)[])
  * every worker has work. Inputs that are not already in the arena are copied there once;
  * results (inflow, outflow, stock, stock change) are arena arrays: pass them to `recycle`
  * when done with them, or they keep their memory until the process ends. A call that needs
- * more arena than CAIRN_ARENA_BUDGET_MB (default 2048) runs in waves and returns ordinary
+ * more arena than CAIRN_ARENA_BUDGET_MB (default 3072, and at most what the arena has left) runs in waves and returns ordinary
  * arrays (recycle ignores them).
  */
 export async function runTasks(tasks: CohortTask[], pool = CohortPool.shared()): Promise<ModelResult[]> {
-  const budget = Number(process.env.CAIRN_ARENA_BUDGET_MB ?? 2048) * 2 ** 20;
-  if (tasks.reduce((a, t) => a + arenaBytes(t, t.n), 0) > budget) return runInWaves(tasks, pool, budget);
+  // What the arena can still take: the budget, and never more than its 4 GiB less what is in
+  // use and a margin for the groups' matrices.
+  const arena = KernelArena.shared();
+  const budget = Math.min(Number(process.env.CAIRN_ARENA_BUDGET_MB ?? 3072) * 2 ** 20, MAX_PAGES * 65536 - arena.liveBytes - 2 ** 28);
+  if (tasks.reduce((a, t) => a + arenaBytes(t, t.n), 0) > budget) return runInWaves(tasks, pool, budget > 0 ? budget : 2 ** 20);
   return runInArena(tasks, pool);
 }
 
-/** Arena bytes a task needs for `n` of its series: inputs copied in, and the four results. */
+/** Arena bytes a task needs for `n` of its series: the inputs not in the arena yet (copied in), and the results. */
 function arenaBytes(t: CohortTask, n: number): number {
   const per = t.kind === "composition" ? t.M ?? 1 : 1;
-  return 8 * t.T * n * (1 + 4 * per + (t.content ? per : 0) + (t.initial ? 3 : 0));
+  const copied = (a: Float64Array | undefined | null, width: number) => (a && !inArena(a) ? width : 0);
+  const i = t.initial;
+  return 8 * n * (copied(t.values, t.T) + 4 * per * t.T + copied(t.content, per * t.T) + (i ? copied(i.stock, t.T) + copied(i.ageSum, t.T) + copied(i.outAgeSum, t.T) : 0));
 }
 
 /** Series s0..s1 of a task, as a task of its own (views, no copies). */
