@@ -104,6 +104,7 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
     napi_value ab;
     if (napi_get_typedarray_info(env, t, &type, &length, &data, &ab, &offset) != napi_ok) return fail(env, "copyColumns: a target is not a typed array");
     napi_get_value_uint32(env, w, &width[j]);
+    if (!((type == napi_float64_array && width[j] == 8) || (type == napi_int32_array && width[j] == 4))) return fail(env, "copyColumns: targets must be Float64Array (width 8) or Int32Array (width 4)");
     base[j] = (uint8_t *)data;
     cap[j] = length;
   }
@@ -119,6 +120,10 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
         return fail(env, "copyColumns: target array too small");
       }
       duckdb_vector v = duckdb_data_chunk_get_vector(ch, j);
+      if (!v) {
+        duckdb_destroy_data_chunk(&ch);
+        return fail(env, "copyColumns: the result has fewer columns than targets");
+      }
       if (!all_valid(duckdb_vector_get_validity(v), n)) {
         duckdb_destroy_data_chunk(&ch);
         char msg[64];
@@ -218,6 +223,7 @@ static napi_value append_columns(napi_env env, napi_callback_info info) {
     napi_value ab;
     if (napi_get_typedarray_info(env, t, &type, &length, &data, &ab, &offset) != napi_ok) return fail(env, "appendColumns: a source is not a typed array");
     napi_get_value_uint32(env, w, &width[c]);
+    if (!((type == napi_float64_array && width[c] == 8) || (type == napi_int32_array && width[c] == 4))) return fail(env, "appendColumns: sources must be Float64Array (width 8) or Int32Array (width 4)");
     if (length < rows) return fail(env, "appendColumns: a source is shorter than the row count");
     base[c] = (const uint8_t *)data;
   }

@@ -78,7 +78,8 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
     const rows = Number((res as unknown as { rowCount: number }).rowCount);
     const cols = kinds.map((k) => (k === "f64" ? new Float64Array(rows) : new Int32Array(rows)));
     try {
-      nat.copyColumns(raw, cols, kinds.map((k) => BYTES[k]));
+      const copied = nat.copyColumns(raw, cols, kinds.map((k) => BYTES[k]));
+      if (copied !== rows) throw new Error(`${copied} rows copied of ${rows}`);
     } catch (e) {
       const m = /NULL in column (\d+)/.exec((e as Error).message);
       throw new Error(m ? `hand-off: column ${m[1]} holds NULLs` : `hand-off: ${(e as Error).message}`);
