@@ -134,6 +134,30 @@ export async function cohortStage(series: number, years: number, groups: number,
   }, (i, t) => say(`inflow-driven run ${i}/${runs}: ${t.toFixed(2)} s (${pool.size} workers)`), 1);
   const fromInflow = last;
   last = [];
+  // The kernels' outflow and stock against the plain sums, for a few series of every 10th group:
+  // outflow(t) = Σ_{c ≤ t} I(c)·P[c, t], stock(t) = Σ_{c ≤ t} I(c)·(1 − Σ_{u ≤ t} P[c, u]).
+  let kernelErr = 0;
+  w.groups.forEach((g, gi) => {
+    if (gi % 10) return;
+    const P = g.group.P;
+    for (const s of [0, g.n - 1]) {
+      const I = w.inflow.subarray((g.from + s) * years, (g.from + s + 1) * years);
+      let stockSum = 0;
+      for (let t = 0; t < years; t++) {
+        let out = 0;
+        stockSum = 0;
+        for (let c = 0; c <= t; c++) {
+          out += I[c]! * P[c * years + t]!;
+          let left = 1;
+          for (let u = c; u <= t; u++) left -= P[c * years + u]!;
+          stockSum += I[c]! * left;
+        }
+        const r = fromInflow[gi]!;
+        kernelErr = Math.max(kernelErr, Math.abs(r.outflow[s * years + t]! - out) / Math.max(out, 1e-300), Math.abs(r.stock[s * years + t]! - stockSum) / Math.max(stockSum, 1e-300));
+      }
+    }
+  });
+  if (!(kernelErr < 1e-9)) throw new Error(`bench: inflow-driven results differ from the plain sums by ${kernelErr} (relative)`);
   const stockT = await timed(runs, async () => {
     recycle(...last.map((r) => ({ inflow: r.inflow, outflow: r.outflow, stock: r.stock, stockChange: r.stockChange })));
     last = await runTasks(w.groups.map((g, gi) => taskFor("stock", g.group, fromInflow[gi]!.stock, g.n)), pool);
@@ -162,7 +186,8 @@ export async function cohortStage(series: number, years: number, groups: number,
     stage: "cohort", cohort_series: series, cohort_years: years, cohort_groups: groups, cells_per_run: cells,
     inflow_driven_s: median(inflowT), stock_driven_s: median(stockT), composition_s: median(compT),
     inflow_driven_cells_per_s: cells / median(inflowT), stock_driven_cells_per_s: cells / median(stockT),
-    composition_cells_per_s: cells / median(compT), round_trip_max_rel_error: maxErr,
+    composition_cells_per_s: cells / median(compT), round_trip_max_rel_error: maxErr, kernel_check_max_rel_error: kernelErr,
+    inflow_driven_runs_s: inflowT, stock_driven_runs_s: stockT, composition_runs_s: compT,
     cohort_kernels: `${wasmKernels() ? `WebAssembly ${kernelVariant()}` : "TypeScript"}, ${pool.size} worker threads, in place in the cohort arena`,
   };
 }
@@ -187,7 +212,7 @@ export async function handoffStage(values: number, runs: number): Promise<StageR
   const sum = (x: ArrayLike<number>) => { let t = 0; for (let i = 0; i < x.length; i++) t += x[i]!; return t; };
   if (Number(chk!.n) !== values || Number(chk!.sa) !== sum(a) || Number(chk!.sb) !== sum(b) || Number(chk!.sv) !== sum(v)) throw new Error("hand-off write mismatch");
   s.close();
-  return { stage: "handoff", handoff_values: values, handoff_native: nativeReader() ? "native reader and parallel append" : "bindings' calls", handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
+  return { stage: "handoff", handoff_values: values, handoff_native: nativeReader() ? "native reader and parallel append" : "bindings' calls", handoff_read_runs_s: readT, handoff_write_runs_s: writeT, handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
 }
 
 /** Cohort-resolved output through the pipeline step: inflow for S series × Y years, by_cohort: true. */
