@@ -78,6 +78,27 @@ static int all_valid(const uint64_t *mask, idx_t n) {
 }
 
 /*
+ * Reads the typed arrays `arrays[0..n)` and their element widths `widths[0..n)` (8: Float64Array,
+ * 4: Int32Array) into data pointers, widths and lengths (in elements). Returns NULL, or the
+ * message of what is wrong.
+ */
+static const char *typed_columns(napi_env env, napi_value arrays, napi_value widths, uint32_t n, uint8_t **data, uint32_t *width, size_t *length) {
+  for (uint32_t j = 0; j < n; j++) {
+    napi_value t, w, ab;
+    napi_typedarray_type type;
+    size_t offset;
+    void *ptr;
+    napi_get_element(env, arrays, j, &t);
+    napi_get_element(env, widths, j, &w);
+    if (napi_get_typedarray_info(env, t, &type, &length[j], &ptr, &ab, &offset) != napi_ok) return "not a typed array";
+    napi_get_value_uint32(env, w, &width[j]);
+    if (!((type == napi_float64_array && width[j] == 8) || (type == napi_int32_array && width[j] == 4))) return "arrays must be Float64Array (width 8) or Int32Array (width 4)";
+    data[j] = (uint8_t *)ptr;
+  }
+  return NULL;
+}
+
+/*
  * copyColumns(result, targets, widths): targets[j] is a typed array that receives column j,
  * widths[j] its element size in bytes (8 for DOUBLE, 4 for INTEGER). Returns the row count.
  * Throws when a target is too small or a column holds NULLs (message "NULL in column j").
@@ -94,19 +115,11 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
   uint8_t *base[64];
   size_t cap[64];
   uint32_t width[64];
-  for (uint32_t j = 0; j < ncols; j++) {
-    napi_value t, w;
-    napi_get_element(env, argv[1], j, &t);
-    napi_get_element(env, argv[2], j, &w);
-    napi_typedarray_type type;
-    size_t length, offset;
-    void *data;
-    napi_value ab;
-    if (napi_get_typedarray_info(env, t, &type, &length, &data, &ab, &offset) != napi_ok) return fail(env, "copyColumns: a target is not a typed array");
-    napi_get_value_uint32(env, w, &width[j]);
-    if (!((type == napi_float64_array && width[j] == 8) || (type == napi_int32_array && width[j] == 4))) return fail(env, "copyColumns: targets must be Float64Array (width 8) or Int32Array (width 4)");
-    base[j] = (uint8_t *)data;
-    cap[j] = length;
+  const char *bad = typed_columns(env, argv[1], argv[2], ncols, base, width, cap);
+  if (bad) {
+    char msg[128];
+    snprintf(msg, sizeof msg, "copyColumns: targets: %s", bad);
+    return fail(env, msg);
   }
   idx_t chunks = duckdb_result_chunk_count(*res);
   idx_t row = 0;
@@ -146,7 +159,7 @@ typedef struct {
   duckdb_database db;
   const char *table;
   uint32_t ncols;
-  const uint8_t *const *base;
+  uint8_t *const *base;
   const uint32_t *width;
   idx_t from, to;
   char error[256];
@@ -206,27 +219,21 @@ static napi_value append_columns(napi_env env, napi_callback_info info) {
   uint32_t ncols = 0;
   napi_get_array_length(env, argv[2], &ncols);
   if (ncols == 0 || ncols > 64) return fail(env, "appendColumns: 1 to 64 columns");
-  const uint8_t *base[64];
+  uint8_t *base[64];
   uint32_t width[64];
+  size_t length[64];
   double rowsD = 0;
   uint32_t threads = 1;
   napi_get_value_double(env, argv[4], &rowsD);
   napi_get_value_uint32(env, argv[5], &threads);
   idx_t rows = (idx_t)rowsD;
-  for (uint32_t c = 0; c < ncols; c++) {
-    napi_value t, w;
-    napi_get_element(env, argv[2], c, &t);
-    napi_get_element(env, argv[3], c, &w);
-    napi_typedarray_type type;
-    size_t length, offset;
-    void *data;
-    napi_value ab;
-    if (napi_get_typedarray_info(env, t, &type, &length, &data, &ab, &offset) != napi_ok) return fail(env, "appendColumns: a source is not a typed array");
-    napi_get_value_uint32(env, w, &width[c]);
-    if (!((type == napi_float64_array && width[c] == 8) || (type == napi_int32_array && width[c] == 4))) return fail(env, "appendColumns: sources must be Float64Array (width 8) or Int32Array (width 4)");
-    if (length < rows) return fail(env, "appendColumns: a source is shorter than the row count");
-    base[c] = (const uint8_t *)data;
+  const char *bad = typed_columns(env, argv[2], argv[3], ncols, base, width, length);
+  if (bad) {
+    char msg[128];
+    snprintf(msg, sizeof msg, "appendColumns: sources: %s", bad);
+    return fail(env, msg);
   }
+  for (uint32_t c = 0; c < ncols; c++) if (length[c] < rows) return fail(env, "appendColumns: a source is shorter than the row count");
   if (threads < 1) threads = 1;
   if (threads > 16) threads = 16;
   if (rows < (idx_t)threads * 16 * CHUNK) threads = 1; /* small tables: one appender */
