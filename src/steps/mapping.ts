@@ -55,7 +55,8 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   const flags = r.flags ?? [];
   await s.run(`CREATE OR REPLACE TABLE ${conc} AS SELECT CAST(commodity AS VARCHAR) AS commodity, CAST(product AS VARCHAR) AS product,
       CAST(material AS VARCHAR) AS material, CAST(factor AS DOUBLE) AS factor, ${hasShare ? "coalesce(CAST(share AS DOUBLE), 1.0)" : "1.0"} AS share,
-      ${hasUnitMass ? "CAST(unit_mass AS DOUBLE)" : "CAST(NULL AS DOUBLE)"} AS unit_mass
+      ${hasUnitMass ? "CAST(unit_mass AS DOUBLE)" : "CAST(NULL AS DOUBLE)"} AS unit_mass,
+      row_number() OVER (PARTITION BY CAST(commodity AS VARCHAR) ORDER BY CAST(product AS VARCHAR), CAST(material AS VARCHAR), factor, share) = 1 AS __first
     FROM ${ident(r.concordance)}`);
 
   await ctx.audits.check({
@@ -92,41 +93,48 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
       CASE WHEN u.commodity IS NULL THEN 'commodity not in the concordance'
            WHEN ${isPiece} AND u.unit_mass IS NULL THEN 'counted in pieces but the concordance gives no unit_mass' END AS reason
     FROM ${ident(r.input)} i LEFT JOIN ${um} u ON u.commodity = CAST(i.commodity AS VARCHAR)`);
-  /** Exact sum over rows of value v, from a per-row term: wide, the term of column v; long, the row's term when its kind is v. */
-  const sumOf = (v: string, wideExpr: (col: string) => string, longUnits: string, cond = "") =>
-    L ? exactTotal(`CASE WHEN __kind = ${lit(v)}${cond ? ` AND ${cond}` : ""} THEN ${longUnits} ELSE 0 END`)
-      : exactSum(cond ? `CASE WHEN ${cond} THEN ${wideExpr(ident(v))} ELSE 0 END` : wideExpr(ident(v)));
 
   const outKeys = r.outputKeys ?? [...g, "product", "material"];
-  // When the output keeps the group keys, the mass distributed by the shares is summed in the
-  // same pass (hidden columns), so the conservation audit needs no second join.
-  const inPass = g.every((k) => outKeys.includes(k));
-  // Joined rows: long input gets its two rounded terms (mass mapped, mass distributed) once per row.
-  const joined = `(SELECT m.*, ${outKeys.filter((k) => !g.includes(k)).map((k) => `c.${ident(k)}`).join(", ")}${outKeys.some((k) => !g.includes(k)) ? ", " : ""}c.factor AS __factor, c.share AS __share
-      ${L ? `, ${exactUnits("m.__value * c.factor * c.share")} AS __mapped, ${exactUnits("coalesce(m.__value, 0) * c.share")} AS __dist` : ""}
-    FROM ${massed} m JOIN ${conc} c ON c.commodity = m.commodity WHERE m.reason IS NULL) j`;
-  const distCols = inPass ? r.values.map((v) => `, ${sumOf(v, (c) => `coalesce(${c}, 0) * __share`, "__dist")} AS ${ident("__dist_" + v)}`).join("") : "";
+  // One pass over the input for the output and the conservation audit: every input row joined
+  // to its concordance rows (an unmapped row once, without), summed in exact units per output
+  // keys, group keys and year; the output (per output keys and year) and the conservation
+  // table (per group keys and year) are then sums of those sums, still exact. The mass in
+  // counts each input row once (__once: its first concordance row, or none).
+  const extraKeys = outKeys.filter((k) => !g.includes(k));
+  const joined = `(SELECT m.*, ${extraKeys.map((k) => `c.${ident(k)}, `).join("")}c.factor AS __factor, c.share AS __share, coalesce(c.__first, TRUE) AS __once
+      ${L ? `, ${exactUnits("m.__value * c.factor * c.share")} AS __mapped, ${exactUnits("coalesce(m.__value, 0) * c.share")} AS __dist, ${exactUnits("coalesce(m.__value, 0)")} AS __units` : ""}
+    FROM ${massed} m LEFT JOIN ${conc} c ON c.commodity = CASE WHEN m.reason IS NULL THEN m.commodity END) j`; // an equi-join (an extra condition in ON is far slower)
+  /** The exact-units term of value v in a joined row: long, the row's term when its kind is v (else 0); wide, column v's. */
+  const term = (v: string, longUnits: string, wide: (col: string) => string, cond: string, otherwise: "0" | "NULL") => L
+    ? `CASE WHEN ${cond} THEN (CASE WHEN __kind = ${lit(v)} THEN ${longUnits} ELSE 0 END) ELSE ${otherwise} END`
+    : `CASE WHEN ${cond} THEN ${exactUnits(wide(ident(v)))} ELSE ${otherwise} END`;
+  const fine = [...new Set([...outKeys, ...g])];
+  const parts = ident(`__parts_${r.step}`);
+  await s.run(`CREATE OR REPLACE TEMP TABLE ${parts} AS
+    SELECT ${idents(fine)}, year,
+      ${r.values.map((v) => [
+        // mapped mass, and mass distributed by the shares: rows with a concordance row only (NULL otherwise, as if not joined)
+        `sum(${term(v, "__mapped", (c) => `${c} * __factor * __share`, "reason IS NULL", "NULL")}) AS ${ident("__m_" + v)}`,
+        `sum(${term(v, "__dist", (c) => `coalesce(${c}, 0) * __share`, "reason IS NULL", "NULL")}) AS ${ident("__d_" + v)}`,
+        // mass in, and its unmapped part (rows counted in pieces without a unit mass have no mass)
+        `sum(${term(v, "__units", (c) => `coalesce(${c}, 0)`, "__once AND NOT __nomass", "0")}) AS ${ident("__i_" + v)}`,
+        `sum(${term(v, "__units", (c) => `coalesce(${c}, 0)`, "__once AND reason IS NOT NULL AND NOT __nomass", "0")}) AS ${ident("__u_" + v)}`,
+      ].join(", ")).join(",\n      ")},
+      ${flags.map((f) => `bool_or(${ident(f)}) FILTER (WHERE reason IS NULL) AS ${ident(f)}, `).join("")}
+      count(*) FILTER (WHERE reason IS NULL) AS __mapped_rows, count(*) FILTER (WHERE __once AND reason IS NOT NULL) AS __unmapped_rows
+    FROM ${joined} GROUP BY ALL`);
   await s.run(`CREATE OR REPLACE TABLE ${ident(r.output)} AS
-    SELECT ${outKeys.map((k) => ident(k)).join(", ")}, year,
-      ${r.values.map((v) => `${sumOf(v, (c) => `${c} * __factor * __share`, "__mapped")} AS ${ident(v)}`).join(", ")}, ${base} AS unit
-      ${flags.map((f) => `, bool_or(${ident(f)}) AS ${ident(f)}`).join("")}${distCols}
-    FROM ${joined}
-    GROUP BY ALL ORDER BY ${idents([...outKeys, "year"])}`);
+    SELECT ${idents(outKeys)}, year, ${r.values.map((v) => `${exactTotal(ident("__m_" + v))} AS ${ident(v)}`).join(", ")}, ${base} AS unit
+      ${flags.map((f) => `, bool_or(${ident(f)}) AS ${ident(f)}`).join("")}
+    FROM ${parts} GROUP BY ${idents([...outKeys, "year"])} HAVING sum(__mapped_rows) > 0 ORDER BY ${idents([...outKeys, "year"])}`);
 
   // Conservation: per group keys and year, mass in = mass distributed by the shares + unmapped mass.
   const cons = ident(`__cons_${r.step}`);
-  const keyCols = [...g, "year"];
-  const inRows = L ? `(SELECT *, ${exactUnits("coalesce(__value, 0)")} AS __units FROM ${massed})` : massed;
   await s.run(`CREATE OR REPLACE TABLE ${cons} AS
-    WITH inp AS (SELECT ${gl("")}year, ${r.values.map((v) => `${sumOf(v, (c) => `coalesce(${c}, 0)`, "__units", "NOT __nomass")} AS ${ident("in_" + v)}, ${sumOf(v, (c) => `coalesce(${c}, 0)`, "__units", "reason IS NOT NULL AND NOT __nomass")} AS ${ident("un_" + v)}`).join(", ")},
-          count(*) FILTER (WHERE reason IS NOT NULL) AS __unmapped_rows
-        FROM ${inRows} GROUP BY ALL),
-      dist AS (${inPass
-        ? `SELECT ${gl("")}year, ${r.values.map((v) => `${exactSum(ident("__dist_" + v))} AS ${ident("out_" + v)}`).join(", ")} FROM ${ident(r.output)} GROUP BY ALL`
-        : `SELECT ${gl("")}year, ${r.values.map((v) => `${sumOf(v, (c) => `coalesce(${c}, 0) * __share`, "__dist")} AS ${ident("out_" + v)}`).join(", ")}
-        FROM ${joined} GROUP BY ALL`})
-    SELECT * FROM inp LEFT JOIN dist USING (${idents(keyCols)})`);
-  if (inPass) for (const v of r.values) await s.run(`ALTER TABLE ${ident(r.output)} DROP COLUMN ${ident("__dist_" + v)}`);
+    SELECT ${gl("")}year, ${r.values.map((v) => `${exactTotal(ident("__i_" + v))} AS ${ident("in_" + v)}, ${exactTotal(ident("__u_" + v))} AS ${ident("un_" + v)}, ${exactTotal(ident("__d_" + v))} AS ${ident("out_" + v)}`).join(", ")},
+      sum(__unmapped_rows) AS __unmapped_rows
+    FROM ${parts} GROUP BY ${idents([...g, "year"])}`);
+  await s.run(`DROP TABLE ${parts}`);
   // Unmapped rows, kept with their mass; the input is scanned for them only when there are any.
   const anyUnmapped = Number(await s.scalar(`SELECT coalesce(sum(__unmapped_rows), 0) FROM ${cons}`)) > 0;
   const unmappedValue = (v: string) => L
