@@ -9,6 +9,7 @@ import type { Lifetime } from "./distributions/types.js";
 import { leavingVector, sigmaAt, survivalVector, ageHorizon } from "./discretise.js";
 import { cohortProduct, stockDrivenSolve, wasmKernels } from "./kernels.js";
 import { wasmInflow } from "./wasm/index.js";
+import { balanceFromOutflow } from "./balance.js";
 
 /** Survival and leaving shares of one lifetime, computed once and shared. */
 export interface Curve {
@@ -221,23 +222,6 @@ export function initialContribution(init: InitialStock, n: number, T: number): I
   return { stock0, stock, ageSum, outAgeSum, tooOld };
 }
 
-function finishFromOutflow(inflow: Float64Array, outflow: Float64Array, n: number, T: number, stock0: Float64Array | null,
-  out?: OutputBuffers): { stock: Float64Array; stockChange: Float64Array } {
-  const stock = out?.stock ?? new Float64Array(n * T);
-  const stockChange = out?.stockChange ?? new Float64Array(n * T);
-  for (let s = 0; s < n; s++) {
-    let prev = stock0 ? stock0[s]! : 0;
-    for (let t = 0; t < T; t++) {
-      const i = s * T + t;
-      const v = prev + inflow[i]! - outflow[i]!;
-      stock[i] = v;
-      stockChange[i] = v - prev;
-      prev = v;
-    }
-  }
-  return { stock, stockChange };
-}
-
 /** Caller-provided result arrays (n × T each), e.g. buffers handed to a worker thread. */
 export interface OutputBuffers {
   inflow?: Float64Array;
@@ -293,7 +277,9 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
       }
     }
   }
-  const { stock, stockChange } = finishFromOutflow(inflow, outflow, n, T, init?.stock0 ?? null, opts.out);
+  const stock = opts.out?.stock ?? new Float64Array(n * T);
+  const stockChange = opts.out?.stockChange ?? new Float64Array(n * T);
+  balanceFromOutflow(inflow, outflow, null, init?.stock0 ?? null, n, T, stock, stockChange);
   const r: ModelResult = { inflow, outflow, stock, stockChange };
   if (opts.indicators) addIndicators(g, r, n, init);
   if (init) r.initialTooOld = init.tooOld;

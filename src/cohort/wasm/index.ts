@@ -8,6 +8,7 @@
  */
 import { setFlagsFromString } from "node:v8";
 import { KERNELS_PLAIN_WASM_BASE64, KERNELS_WASM_BASE64 } from "./kernels-binary.js";
+import { balanceFromOutflow } from "../balance.js";
 
 interface Kernels {
   product(I: number, M: number, O: number, n: number, T: number): void;
@@ -53,14 +54,15 @@ export function newKernelMemory(initialPages = 1): WebAssembly.Memory {
 
 let own: { k: Kernels; mem: WebAssembly.Memory } | null = null;
 
-function ownKernels(bytes: number): { k: Kernels; f: Float64Array } {
+/** This thread's own instance, its memory grown to at least `bytes`. */
+function ownKernels(bytes: number): Kernels {
   if (!own) {
     const mem = newKernelMemory();
     own = { k: instantiate(mem), mem };
   }
   const have = own.mem.buffer.byteLength;
   if (bytes > have) own.mem.grow(Math.ceil((bytes - have) / 65536));
-  return { k: own.k, f: new Float64Array(own.mem.buffer) };
+  return own.k;
 }
 
 // ---- the shared arena: in-place calls ----
@@ -160,7 +162,7 @@ export function wasmProduct(inp: Float64Array, n: number, T: number, M: Float64A
   kernelCalls.staged++;
   const mLen = panelLength(T);
   const block = Math.min(pad4(n), blockRows(2, T));
-  const { k } = ownKernels((mLen + 2 * block * T) * 8);
+  const k = ownKernels((mLen + 2 * block * T) * 8);
   let f = new Float64Array(own!.mem.buffer);
   packPanels(f, M, T);
   const iOff = mLen, oOff = mLen + block * T;
@@ -170,21 +172,6 @@ export function wasmProduct(inp: Float64Array, n: number, T: number, M: Float64A
     putRows(f, inp, s0, m, pad4(m), T, iOff);
     k.product(iOff * 8, 0, oOff * 8, pad4(m), T);
     getRows(f, out, s0, m, T, oOff);
-  }
-}
-
-/** The balance from an outflow: stock(t) = stock(t − 1) + inflow(t) − outflow(t), from stock0. */
-function balance(inp: Float64Array, outflow: Float64Array, initOut: Float64Array | null, stock0: Float64Array | null, n: number, T: number,
-  stock: Float64Array, stockChange: Float64Array): void {
-  for (let s = 0; s < n; s++) {
-    let prev = stock0 ? stock0[s]! : 0;
-    for (let i = s * T; i < s * T + T; i++) {
-      if (initOut) outflow[i] += initOut[i]!;
-      const v = prev + inp[i]! - outflow[i]!;
-      stock[i] = v;
-      stockChange[i] = v - prev;
-      prev = v;
-    }
   }
 }
 
@@ -208,7 +195,7 @@ export function wasmInflow(inp: Float64Array, n: number, T: number, P: Float64Ar
     if (io >= 0 && s0 >= 0) arena!.k.inflow(I, pAt, O, S, D, io, s0, n4, T);
     else {
       arena!.k.product(I, pAt, O, n4, T);
-      balance(inp, outflow, initOut, stock0, n4, T, stock, stockChange);
+      balanceFromOutflow(inp, outflow, initOut, stock0, n4, T, stock, stockChange);
     }
     if (n4 < n) {
       const tail = (a: Float64Array) => a.subarray(n4 * T);
@@ -221,7 +208,7 @@ export function wasmInflow(inp: Float64Array, n: number, T: number, P: Float64Ar
   const mLen = panelLength(T);
   const arrays = 4 + (initOut ? 1 : 0);
   const block = Math.min(pad4(n), blockRows(arrays, T));
-  const { k } = ownKernels((mLen + arrays * block * T + block) * 8);
+  const k = ownKernels((mLen + arrays * block * T + block) * 8);
   let f = new Float64Array(own!.mem.buffer);
   packPanels(f, P, T);
   const off = (j: number) => mLen + j * block * T; // doubles
@@ -261,7 +248,7 @@ export function wasmSolve(Z: Float64Array, n: number, T: number, St: Float64Arra
   kernelCalls.staged++;
   const arrays = init ? 4 : 3;
   const block = Math.min(pad4(n), blockRows(arrays, T));
-  const { k } = ownKernels((T * T + arrays * block * T) * 8);
+  const k = ownKernels((T * T + arrays * block * T) * 8);
   let f = new Float64Array(own!.mem.buffer);
   f.set(St, 0);
   const zOff = T * T, iOff = zOff + block * T, aOff = iOff + block * T, initOff = aOff + block * T;
