@@ -51,5 +51,10 @@ export function exactUnits(expr: string): string {
 
 /** exactSum of terms already in resolution units (from exactUnits), e.g. computed once per row and summed under several conditions. */
 export function exactTotal(unitsExpr: string): string {
-  return `(CAST(sum(${unitsExpr}) AS DOUBLE) / ${sumScale})`;
+  return fromUnits(`sum(${unitsExpr})`);
+}
+
+/** A whole number of resolution units (an exact sum, HUGEINT) back in the base unit, as DOUBLE: what exactTotal returns. */
+export function fromUnits(units: string): string {
+  return `(CAST(${units} AS DOUBLE) / ${sumScale})`;
 }

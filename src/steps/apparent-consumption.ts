@@ -9,6 +9,7 @@ import { DataError } from "../errors.js";
 import { exactSum, exactTotal, exactUnits, ident, idents, keyMap, lit } from "../engine/sql.js";
 import { defineStep } from "./types.js";
 import { applyConcordance } from "./mapping.js";
+import { asymmetryItems } from "./asymmetry.js";
 
 const PRODUCTION_ROLES = ["region", "commodity", "year", "quantity"] as const;
 const TRADE_ROLES = ["reporter", "partner", "commodity", "flow", "year", "quantity"] as const;
@@ -74,22 +75,10 @@ export const apparentConsumptionStep = defineStep({
       await ctx.audits.note(id, "mirror-fill", "warning", "pass", `${filled} reporter-years without trade reports filled from partners' reports (${mirroredRows} mirrored rows, marked mirrored = true)`, filled, null);
     }
 
-    // Trade asymmetry where both sides report: one pass, keyed by (importer, exporter).
-    await ctx.audits.check({
-      step: id, check: "trade-asymmetry", severity: a.asymmetry_severity,
-      items: `WITH p AS (
-          SELECT importer, exporter, commodity, year,
-            ${exactTotal("CASE WHEN flow = 'import' THEN __units END")} AS m, ${exactTotal("CASE WHEN flow = 'export' THEN __units END")} AS x
-          FROM (SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
-                  CAST(commodity AS VARCHAR) AS commodity, year, flow, ${exactUnits("quantity")} AS __units
-                FROM ${T("trade")} WHERE NOT mirrored)
-          GROUP BY importer, exporter, commodity, year HAVING bool_or(flow = 'import') AND bool_or(flow = 'export'))
-        SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
-          m AS observed, x AS expected, ${a.asymmetry_threshold} * greatest(abs(m), abs(x)) AS tolerance,
-          'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(a.asymmetry_threshold * 100))} || ' %' AS message
-        FROM p`,
-      failMessage: "trade asymmetry",
-    });
+    // Trade asymmetry where both sides report (asymmetry.ts: pairs found by sorting numbered keys, or by grouping).
+    const asym = await asymmetryItems(s, { trade: `__${id}_trade`, prefix: `__${id}_asym`, threshold: a.asymmetry_threshold });
+    await ctx.audits.check({ step: id, check: "trade-asymmetry", severity: a.asymmetry_severity, items: asym.items, failMessage: "trade asymmetry" });
+    await asym.cleanup();
 
     // One long view of flows: production rows and trade rows (reporter as region), one quantity
     // per row named by its kind (production, imports, exports), never copied.

@@ -104,34 +104,45 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   const joined = `(SELECT m.*, ${extraKeys.map((k) => `c.${ident(k)}, `).join("")}c.factor AS __factor, c.share AS __share, coalesce(c.__first, TRUE) AS __once
       ${L ? `, ${exactUnits("m.__value * c.factor * c.share")} AS __mapped, ${exactUnits("coalesce(m.__value, 0) * c.share")} AS __dist, ${exactUnits("coalesce(m.__value, 0)")} AS __units` : ""}
     FROM ${massed} m LEFT JOIN ${conc} c ON c.commodity = CASE WHEN m.reason IS NULL THEN m.commodity END) j`; // an equi-join (an extra condition in ON is far slower)
-  /** The exact-units term of value v in a joined row: long, the row's term when its kind is v (else 0); wide, column v's. */
-  const term = (v: string, longUnits: string, wide: (col: string) => string, cond: string, otherwise: "0" | "NULL") => L
-    ? `CASE WHEN ${cond} THEN (CASE WHEN __kind = ${lit(v)} THEN ${longUnits} ELSE 0 END) ELSE ${otherwise} END`
-    : `CASE WHEN ${cond} THEN ${exactUnits(wide(ident(v)))} ELSE ${otherwise} END`;
   const fine = [...new Set([...outKeys, ...g])];
   const parts = ident(`__parts_${r.step}`);
+  // Long input: the parts are also per kind, so each joined row adds to 4 sums, not 4 per value;
+  // the per-value columns below are then picked from the kind's rows.
+  const byKind = L ? ", __kind" : "";
+  const sums = L
+    ? [
+      // mapped mass, and mass distributed by the shares: rows with a concordance row only (NULL otherwise, as if not joined)
+      `sum(CASE WHEN reason IS NULL THEN __mapped END) AS __m`, `sum(CASE WHEN reason IS NULL THEN __dist END) AS __d`,
+      // mass in, and its unmapped part (rows counted in pieces without a unit mass have no mass)
+      `sum(CASE WHEN __once AND NOT __nomass THEN __units ELSE 0 END) AS __i`,
+      `sum(CASE WHEN __once AND reason IS NOT NULL AND NOT __nomass THEN __units ELSE 0 END) AS __u`,
+    ].join(", ")
+    : r.values.map((v) => [
+      `sum(CASE WHEN reason IS NULL THEN ${exactUnits(`${ident(v)} * __factor * __share`)} END) AS ${ident("__m_" + v)}`,
+      `sum(CASE WHEN reason IS NULL THEN ${exactUnits(`coalesce(${ident(v)}, 0) * __share`)} END) AS ${ident("__d_" + v)}`,
+      `sum(CASE WHEN __once AND NOT __nomass THEN ${exactUnits(`coalesce(${ident(v)}, 0)`)} ELSE 0 END) AS ${ident("__i_" + v)}`,
+      `sum(CASE WHEN __once AND reason IS NOT NULL AND NOT __nomass THEN ${exactUnits(`coalesce(${ident(v)}, 0)`)} ELSE 0 END) AS ${ident("__u_" + v)}`,
+    ].join(", ")).join(",\n      ");
   await s.run(`CREATE OR REPLACE TEMP TABLE ${parts} AS
-    SELECT ${idents(fine)}, year,
-      ${r.values.map((v) => [
-        // mapped mass, and mass distributed by the shares: rows with a concordance row only (NULL otherwise, as if not joined)
-        `sum(${term(v, "__mapped", (c) => `${c} * __factor * __share`, "reason IS NULL", "NULL")}) AS ${ident("__m_" + v)}`,
-        `sum(${term(v, "__dist", (c) => `coalesce(${c}, 0) * __share`, "reason IS NULL", "NULL")}) AS ${ident("__d_" + v)}`,
-        // mass in, and its unmapped part (rows counted in pieces without a unit mass have no mass)
-        `sum(${term(v, "__units", (c) => `coalesce(${c}, 0)`, "__once AND NOT __nomass", "0")}) AS ${ident("__i_" + v)}`,
-        `sum(${term(v, "__units", (c) => `coalesce(${c}, 0)`, "__once AND reason IS NOT NULL AND NOT __nomass", "0")}) AS ${ident("__u_" + v)}`,
-      ].join(", ")).join(",\n      ")},
+    SELECT ${idents(fine)}, year${byKind}, ${sums},
       ${flags.map((f) => `bool_or(${ident(f)}) FILTER (WHERE reason IS NULL) AS ${ident(f)}, `).join("")}
       count(*) FILTER (WHERE reason IS NULL) AS __mapped_rows, count(*) FILTER (WHERE __once AND reason IS NOT NULL) AS __unmapped_rows
     FROM ${joined} GROUP BY ALL`);
+  /**
+   * Part column c ("m", "d", "i" or "u") of value v, to be summed over parts. Long: the kind's
+   * parts, and 0 from the other kinds' parts; mapped and distributed mass stay NULL where a
+   * part has no mapped rows, so that a sum is NULL exactly where it was with one part per key.
+   */
+  const part = (c: "m" | "d" | "i" | "u", v: string) => (L ? `CASE WHEN __kind = ${lit(v)} THEN __${c} ${c === "m" || c === "d" ? "WHEN __mapped_rows > 0 THEN 0" : "ELSE 0"} END` : ident(`__${c}_${v}`));
   await s.run(`CREATE OR REPLACE TABLE ${ident(r.output)} AS
-    SELECT ${idents(outKeys)}, year, ${r.values.map((v) => `${exactTotal(ident("__m_" + v))} AS ${ident(v)}`).join(", ")}, ${base} AS unit
+    SELECT ${idents(outKeys)}, year, ${r.values.map((v) => `${exactTotal(part("m", v))} AS ${ident(v)}`).join(", ")}, ${base} AS unit
       ${flags.map((f) => `, bool_or(${ident(f)}) AS ${ident(f)}`).join("")}
     FROM ${parts} GROUP BY ${idents([...outKeys, "year"])} HAVING sum(__mapped_rows) > 0 ORDER BY ${idents([...outKeys, "year"])}`);
 
   // Conservation: per group keys and year, mass in = mass distributed by the shares + unmapped mass.
   const cons = ident(`__cons_${r.step}`);
   await s.run(`CREATE OR REPLACE TABLE ${cons} AS
-    SELECT ${gl("")}year, ${r.values.map((v) => `${exactTotal(ident("__i_" + v))} AS ${ident("in_" + v)}, ${exactTotal(ident("__u_" + v))} AS ${ident("un_" + v)}, ${exactTotal(ident("__d_" + v))} AS ${ident("out_" + v)}`).join(", ")},
+    SELECT ${gl("")}year, ${r.values.map((v) => `${exactTotal(part("i", v))} AS ${ident("in_" + v)}, ${exactTotal(part("u", v))} AS ${ident("un_" + v)}, ${exactTotal(part("d", v))} AS ${ident("out_" + v)}`).join(", ")},
       sum(__unmapped_rows) AS __unmapped_rows
     FROM ${parts} GROUP BY ${idents([...g, "year"])}`);
   await s.run(`DROP TABLE ${parts}`);

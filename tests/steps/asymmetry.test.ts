@@ -1,0 +1,65 @@
+import { afterAll, beforeAll, describe, expect, it } from "vitest";
+import { Session } from "../../src/engine/session.js";
+import { asymmetryItems } from "../../src/steps/asymmetry.js";
+
+// The two ways of finding pairs of reports must give the same items. The reference is the
+// grouped way, checked by hand in apparent-consumption.test.ts; here the same items must
+// come out of the sorted keys, and the sorted way must step aside where it is not exact.
+let s: Session;
+beforeAll(async () => {
+  s = await Session.open();
+});
+afterAll(() => s.close());
+
+async function items(table: string, force?: "sorted keys" | "grouped text keys") {
+  const a = await asymmetryItems(s, { trade: table, prefix: `__t_${table}`, threshold: 0.25 }, force);
+  const rows = await s.all(`SELECT CAST(keys AS VARCHAR) AS keys, year, observed, expected, tolerance, message FROM (${a.items}) ORDER BY ALL`);
+  await a.cleanup();
+  return { path: a.path, rows };
+}
+
+describe("trade asymmetry: pairs found by sorted numbered keys = pairs found by grouping", () => {
+  it("a random bilateral set with most reports paired", async () => {
+    // 6 regions, 7 commodities, 5 years; each (importer, exporter, commodity, year) reported by
+    // the importer, the exporter, both or neither, with quantities that differ by up to 60 %.
+    await s.run(`CREATE TABLE tr AS
+      WITH k AS (SELECT 'R' || i AS imp, 'R' || e AS exp, 'C' || c AS commodity, CAST(2000 + y AS BIGINT) AS year, hash(i, e, c, y) % 4 AS who
+                 FROM range(6) a(i), range(6) b(e), range(7) d(c), range(5) f(y) WHERE i <> e)
+      SELECT imp AS reporter, exp AS partner, commodity, 'import' AS flow, year, 1 + (hash(imp, commodity, year) % 10000) / 7.0 AS quantity, FALSE AS mirrored FROM k WHERE who IN (0, 1)
+      UNION ALL
+      SELECT exp, imp, commodity, 'export', year, (1 + (hash(imp, commodity, year) % 10000) / 7.0) * (0.7 + (hash(exp, year) % 60) / 100.0), FALSE FROM k WHERE who IN (0, 2)
+      UNION ALL SELECT 'R1', 'R2', 'C1', 'export', 2003, 5.0, TRUE`);
+    const sorted = await items("tr");
+    const grouped = await items("tr", "grouped text keys");
+    expect(sorted.path).toBe("sorted keys");
+    expect(grouped.path).toBe("grouped text keys");
+    expect(sorted.rows.length).toBeGreaterThan(200);
+    expect(sorted.rows).toEqual(grouped.rows);
+    expect(sorted.rows.some((r) => Math.abs(Number(r.observed) - Number(r.expected)) > Number(r.tolerance))).toBe(true);
+  });
+
+  it("two reports of one pair and flow: the sorted way finds them and steps aside", async () => {
+    await s.run(`CREATE TABLE dup AS SELECT * FROM (VALUES
+      ('A', 'B', 'c1', 'import', 2000::BIGINT, 60.0, FALSE), ('A', 'B', 'c1', 'import', 2000, 40.0, FALSE), ('B', 'A', 'c1', 'export', 2000, 70.0, FALSE),
+      ('A', 'C', 'c1', 'import', 2000, 10.0, FALSE), ('C', 'A', 'c1', 'export', 2000, 10.0, FALSE))
+      t(reporter, partner, commodity, flow, year, quantity, mirrored)`);
+    const r = await items("dup");
+    expect(r.path).toBe("grouped text keys");
+    // imports of A from B: 60 + 40 = 100 against exports of 70
+    expect(r.rows.map((x) => [x.keys, x.observed, x.expected])).toEqual([
+      ["{importer=A, exporter=B, commodity=c1}", 100, 70],
+      ["{importer=A, exporter=C, commodity=c1}", 10, 10],
+    ]);
+  });
+
+  it("a NULL key or a non-integer year also goes the general way", async () => {
+    await s.run(`CREATE TABLE nul AS SELECT * FROM (VALUES ('A', NULL, 'c1', 'import', 2000::BIGINT, 1.0, FALSE), ('B', 'A', 'c1', 'export', 2000, 1.0, FALSE))
+      t(reporter, partner, commodity, flow, year, quantity, mirrored)`);
+    expect((await items("nul")).path).toBe("grouped text keys");
+    await s.run(`CREATE TABLE dy AS SELECT * FROM (VALUES ('A', 'B', 'c1', 'import', 2000.5::DOUBLE, 1.0, FALSE), ('B', 'A', 'c1', 'export', 2000.5, 1.0, FALSE))
+      t(reporter, partner, commodity, flow, year, quantity, mirrored)`);
+    const dy = await items("dy");
+    expect(dy.path).toBe("grouped text keys");
+    expect(dy.rows).toHaveLength(1);
+  });
+});
