@@ -26,8 +26,10 @@ export class KernelArena {
   private top = ALIGN;
   private readonly live = new Map<number, number>(); // offset → bytes of a block in use
   private free: { off: number; bytes: number }[] = []; // free blocks below top, by offset
-  private readonly groups = new Map<Float64Array, { m: GroupMatrices; pins: number; bytes: number }>();
+  private readonly groups = new Map<Float64Array, { m: GroupMatrices; pins: number; bytes: number; call: number }>();
   private cachedBytes = 0;
+  /** Number of the current pool call (beginCall); the groups it used are kept until the next. */
+  private call = 0;
   private readonly cacheBudget = Number(process.env.CAIRN_ARENA_CACHE_MB ?? 256) * 2 ** 20;
 
   /** The process-wide arena, attached to this thread's kernels. */
@@ -100,16 +102,19 @@ export class KernelArena {
   /**
    * A lifetime group's matrices in the arena: survival S, leaving P with its panel layout for
    * the product kernel, and (stock-driven) the transposed survival St. Made once per group and
-   * kept while they fit the cache budget (256 MiB by default, CAIRN_ARENA_CACHE_MB); pinned
-   * until `unpin` so that no running task loses them. Keyed by the P array itself: a group's
-   * matrices are taken as fixed once made (CohortGroup never changes them).
+   * kept: those of the latest pool call all (they were all in the arena during it anyway, and
+   * a repeated call over more groups than the budget would otherwise remake every one of them:
+   * least-recently-used eviction misses every time on a cycle), older ones while they fit the
+   * cache budget (256 MiB by default, CAIRN_ARENA_CACHE_MB). Pinned until `unpin` so that no
+   * running task loses them. Keyed by the P array itself: a group's matrices are taken as
+   * fixed once made (CohortGroup never changes them).
    */
   groupMatrices(T: number, S: Float64Array, P: Float64Array, St: Float64Array | null): GroupMatrices {
     let e = this.groups.get(P);
     if (!e) {
       const m: GroupMatrices = { S: this.copyIn(S), P: this.copyIn(P), panels: this.alloc(panelLength(T)), St: null };
       packPanels(m.panels, P, T);
-      e = { m, pins: 0, bytes: (2 * T * T + panelLength(T)) * 8 };
+      e = { m, pins: 0, bytes: (2 * T * T + panelLength(T)) * 8, call: this.call };
       this.groups.set(P, e);
       this.cachedBytes += e.bytes;
     }
@@ -120,16 +125,22 @@ export class KernelArena {
     }
     registerPanels(e.m.P, e.m.panels);
     e.pins++;
+    e.call = this.call;
     return e.m;
   }
 
-  /** Ends a use of groupMatrices(P); groups beyond the cache budget are freed, oldest first. */
+  /** Starts a pool call: groups used before it may now be freed beyond the cache budget. */
+  beginCall(): void {
+    this.call++;
+  }
+
+  /** Ends a use of groupMatrices(P); groups of earlier calls beyond the cache budget are freed, oldest first. */
   unpin(P: Float64Array): void {
     const e = this.groups.get(P);
     if (e) e.pins = Math.max(0, e.pins - 1);
     for (const [key, g] of this.groups) {
       if (this.cachedBytes <= this.cacheBudget) break;
-      if (g.pins > 0) continue;
+      if (g.pins > 0 || g.call === this.call) continue;
       for (const a of [g.m.S, g.m.P, g.m.panels, g.m.St]) if (a) this.release(a);
       this.groups.delete(key);
       this.cachedBytes -= g.bytes;

@@ -249,6 +249,7 @@ async function runInWaves(tasks: CohortTask[], pool: CohortPool, budget: number)
 
 async function runInArena(tasks: CohortTask[], pool: CohortPool): Promise<ModelResult[]> {
   const arena = KernelArena.shared();
+  arena.beginCall();
   const ref = (a: Float64Array): ArenaRef => [a.byteOffset, a.length];
   const totalSeries = tasks.reduce((a, t) => a + t.n, 0);
   const target = (Math.max(16, Math.ceil(totalSeries / (pool.size * 8))) + 3) & ~3;

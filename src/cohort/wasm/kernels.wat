@@ -27,105 +27,132 @@
   ;; 4 series × 4 years per block: 8 accumulators of two years each. The cohort loop is not
   ;; unrolled on purpose: unrolled, the optimising compiler hoists the loads and spills the
   ;; accumulators to the stack, which halves the speed.
+;; Loop order: series are taken in chunks (see $chunk); within a chunk, year blocks are the
+  ;; outer loop and 4-series blocks the inner one, so that one panel of M (at most 32·T bytes)
+  ;; serves every series of the chunk from the first-level cache while the chunk's rows stay in
+  ;; the second-level cache. With chunks of 4 series this is the plain order (all of M per 4 series).
   (func $product (export "product") (param $I i32) (param $M i32) (param $O i32) (param $n i32) (param $T i32)
     (local $rb i32) (local $tp i32) (local $s0 i32) (local $t0 i32) (local $c i32) (local $cend i32)
     (local $p0 i32) (local $p1 i32) (local $p2 i32) (local $p3 i32) (local $mp i32) (local $o i32) (local $row i32)
+    (local $cs i32) (local $ce i32) (local $ch i32) (local $mb i32)
     (local $a00 v128) (local $a01 v128) (local $a10 v128) (local $a11 v128)
     (local $a20 v128) (local $a21 v128) (local $a30 v128) (local $a31 v128)
     (local $m0 v128) (local $m1 v128) (local $x v128)
     (local.set $rb (i32.shl (local.get $T) (i32.const 3)))
     (local.set $tp (i32.and (i32.add (local.get $T) (i32.const 3)) (i32.const -4)))
-    (local.set $s0 (i32.const 0))
-    (block $sdone
-      (loop $sloop
-        (br_if $sdone (i32.ge_u (local.get $s0) (local.get $n)))
-        (local.set $row (i32.mul (local.get $s0) (local.get $rb)))
+    (local.set $ch (call $chunk (local.get $T)))
+    (local.set $cs (i32.const 0))
+    (block $chdone
+      (loop $chloop
+        (br_if $chdone (i32.ge_u (local.get $cs) (local.get $n)))
+        (local.set $ce (i32.add (local.get $cs) (local.get $ch)))
+        (if (i32.gt_u (local.get $ce) (local.get $n)) (then (local.set $ce (local.get $n))))
         (local.set $t0 (i32.const 0))
         (block $tdone
           (loop $tloop
             (br_if $tdone (i32.ge_u (local.get $t0) (local.get $T)))
-            (local.set $a00 (v128.const f64x2 0 0)) (local.set $a01 (v128.const f64x2 0 0))
-            (local.set $a10 (v128.const f64x2 0 0)) (local.set $a11 (v128.const f64x2 0 0))
-            (local.set $a20 (v128.const f64x2 0 0)) (local.set $a21 (v128.const f64x2 0 0))
-            (local.set $a30 (v128.const f64x2 0 0)) (local.set $a31 (v128.const f64x2 0 0))
-            ;; row pointers into inp at cohort 0
-            (local.set $p0 (i32.add (local.get $I) (local.get $row)))
-            (local.set $p1 (i32.add (local.get $p0) (local.get $rb)))
-            (local.set $p2 (i32.add (local.get $p1) (local.get $rb)))
-            (local.set $p3 (i32.add (local.get $p2) (local.get $rb)))
-            (local.set $mp (i32.add (local.get $M) (i32.shl (i32.mul (local.get $t0) (local.get $tp)) (i32.const 3))))
+            (local.set $mb (i32.add (local.get $M) (i32.shl (i32.mul (local.get $t0) (local.get $tp)) (i32.const 3))))
             ;; cohorts 0 .. min(t0 + 3, T − 1)
             (local.set $cend (i32.add (local.get $t0) (i32.const 4)))
             (if (i32.gt_u (local.get $cend) (local.get $T)) (then (local.set $cend (local.get $T))))
-            (local.set $c (i32.const 0))
-            (loop $cloop
-              (local.set $m0 (v128.load (local.get $mp)))
-              (local.set $m1 (v128.load offset=16 (local.get $mp)))
-              (local.set $x (v128.load64_splat (local.get $p0)))
-              (local.set $a00 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a00)))
-              (local.set $a01 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a01)))
-              (local.set $x (v128.load64_splat (local.get $p1)))
-              (local.set $a10 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a10)))
-              (local.set $a11 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a11)))
-              (local.set $x (v128.load64_splat (local.get $p2)))
-              (local.set $a20 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a20)))
-              (local.set $a21 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a21)))
-              (local.set $x (v128.load64_splat (local.get $p3)))
-              (local.set $a30 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a30)))
-              (local.set $a31 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a31)))
-              (local.set $p0 (i32.add (local.get $p0) (i32.const 8)))
-              (local.set $p1 (i32.add (local.get $p1) (i32.const 8)))
-              (local.set $p2 (i32.add (local.get $p2) (i32.const 8)))
-              (local.set $p3 (i32.add (local.get $p3) (i32.const 8)))
-              (local.set $mp (i32.add (local.get $mp) (i32.const 32)))
-              (local.set $c (i32.add (local.get $c) (i32.const 1)))
-              (br_if $cloop (i32.lt_u (local.get $c) (local.get $cend))))
-            (local.set $o (i32.add (i32.add (local.get $O) (local.get $row)) (i32.shl (local.get $t0) (i32.const 3))))
-            (if (i32.le_u (i32.add (local.get $t0) (i32.const 4)) (local.get $T))
-              (then
-                (v128.store (local.get $o) (local.get $a00))
-                (v128.store offset=16 (local.get $o) (local.get $a01))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (v128.store (local.get $o) (local.get $a10))
-                (v128.store offset=16 (local.get $o) (local.get $a11))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (v128.store (local.get $o) (local.get $a20))
-                (v128.store offset=16 (local.get $o) (local.get $a21))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (v128.store (local.get $o) (local.get $a30))
-                (v128.store offset=16 (local.get $o) (local.get $a31)))
-              (else
-                ;; the last, partial block of years
-                (local.set $c (i32.sub (local.get $T) (local.get $t0)))
-                (call $put (local.get $o) (local.get $c) (local.get $a00) (local.get $a01))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (call $put (local.get $o) (local.get $c) (local.get $a10) (local.get $a11))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (call $put (local.get $o) (local.get $c) (local.get $a20) (local.get $a21))
-                (local.set $o (i32.add (local.get $o) (local.get $rb)))
-                (call $put (local.get $o) (local.get $c) (local.get $a30) (local.get $a31))))
+            (local.set $s0 (local.get $cs))
+            (block $sdone
+              (loop $sloop
+                (br_if $sdone (i32.ge_u (local.get $s0) (local.get $ce)))
+                (local.set $row (i32.mul (local.get $s0) (local.get $rb)))
+                (local.set $a00 (v128.const f64x2 0 0)) (local.set $a01 (v128.const f64x2 0 0))
+                (local.set $a10 (v128.const f64x2 0 0)) (local.set $a11 (v128.const f64x2 0 0))
+                (local.set $a20 (v128.const f64x2 0 0)) (local.set $a21 (v128.const f64x2 0 0))
+                (local.set $a30 (v128.const f64x2 0 0)) (local.set $a31 (v128.const f64x2 0 0))
+                ;; row pointers into inp at cohort 0
+                (local.set $p0 (i32.add (local.get $I) (local.get $row)))
+                (local.set $p1 (i32.add (local.get $p0) (local.get $rb)))
+                (local.set $p2 (i32.add (local.get $p1) (local.get $rb)))
+                (local.set $p3 (i32.add (local.get $p2) (local.get $rb)))
+                (local.set $mp (local.get $mb))
+                (local.set $c (i32.const 0))
+                (loop $cloop
+                  (local.set $m0 (v128.load (local.get $mp)))
+                  (local.set $m1 (v128.load offset=16 (local.get $mp)))
+                  (local.set $x (v128.load64_splat (local.get $p0)))
+                  (local.set $a00 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a00)))
+                  (local.set $a01 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a01)))
+                  (local.set $x (v128.load64_splat (local.get $p1)))
+                  (local.set $a10 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a10)))
+                  (local.set $a11 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a11)))
+                  (local.set $x (v128.load64_splat (local.get $p2)))
+                  (local.set $a20 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a20)))
+                  (local.set $a21 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a21)))
+                  (local.set $x (v128.load64_splat (local.get $p3)))
+                  (local.set $a30 (f64x2.relaxed_madd (local.get $x) (local.get $m0) (local.get $a30)))
+                  (local.set $a31 (f64x2.relaxed_madd (local.get $x) (local.get $m1) (local.get $a31)))
+                  (local.set $p0 (i32.add (local.get $p0) (i32.const 8)))
+                  (local.set $p1 (i32.add (local.get $p1) (i32.const 8)))
+                  (local.set $p2 (i32.add (local.get $p2) (i32.const 8)))
+                  (local.set $p3 (i32.add (local.get $p3) (i32.const 8)))
+                  (local.set $mp (i32.add (local.get $mp) (i32.const 32)))
+                  (local.set $c (i32.add (local.get $c) (i32.const 1)))
+                  (br_if $cloop (i32.lt_u (local.get $c) (local.get $cend))))
+                (local.set $o (i32.add (i32.add (local.get $O) (local.get $row)) (i32.shl (local.get $t0) (i32.const 3))))
+                (if (i32.le_u (i32.add (local.get $t0) (i32.const 4)) (local.get $T))
+                  (then
+                    (v128.store (local.get $o) (local.get $a00))
+                    (v128.store offset=16 (local.get $o) (local.get $a01))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (v128.store (local.get $o) (local.get $a10))
+                    (v128.store offset=16 (local.get $o) (local.get $a11))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (v128.store (local.get $o) (local.get $a20))
+                    (v128.store offset=16 (local.get $o) (local.get $a21))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (v128.store (local.get $o) (local.get $a30))
+                    (v128.store offset=16 (local.get $o) (local.get $a31)))
+                  (else
+                    ;; the last, partial block of years
+                    (local.set $c (i32.sub (local.get $T) (local.get $t0)))
+                    (call $put (local.get $o) (local.get $c) (local.get $a00) (local.get $a01))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (call $put (local.get $o) (local.get $c) (local.get $a10) (local.get $a11))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (call $put (local.get $o) (local.get $c) (local.get $a20) (local.get $a21))
+                    (local.set $o (i32.add (local.get $o) (local.get $rb)))
+                    (call $put (local.get $o) (local.get $c) (local.get $a30) (local.get $a31))))
+                (local.set $s0 (i32.add (local.get $s0) (i32.const 4)))
+                (br $sloop)))
             (local.set $t0 (i32.add (local.get $t0) (i32.const 4)))
             (br $tloop)))
-        (local.set $s0 (i32.add (local.get $s0) (i32.const 4)))
-        (br $sloop))))
+        (local.set $cs (local.get $ce))
+        (br $chloop))))
+
+  ;; Series per chunk for horizon T (a multiple of 4). While the panels of M (about 4·T² bytes)
+  ;; fit a second-level cache of 512 KB (T ≤ 362), 4: each 4 series read all of M from
+  ;; there. Beyond, chunks whose rows of inp take about 256 KB (at least 4 series).
+  (func $chunk (export "chunk") (param $T i32) (result i32)
+    (local $ch i32)
+    (if (i32.le_u (local.get $T) (i32.const 362)) (then (return (i32.const 4))))
+    (local.set $ch (i32.and (i32.div_u (i32.const 32768) (local.get $T)) (i32.const -4)))
+    (if (result i32) (i32.lt_u (local.get $ch) (i32.const 4)) (then (i32.const 4)) (else (local.get $ch))))
 
   ;; Inflow-driven model in one call: outflow O = product(I, M) (+ initOut, the initial
   ;; stock's outflow, when initOut ≠ 0), then the balance per series:
   ;;   S[s, t] = S[s, t − 1] + I[s, t] − O[s, t], D[s, t] = S[s, t] − S[s, t − 1], S[s, −1] = stock0[s]
-  ;; (stock0 = 0: none). Same layout rules as product. Four series at a time: the product for
-  ;; them, then their balance while their rows are still in the first-level cache.
+  ;; (stock0 = 0: none). Same layout rules as product. One chunk of series at a time ($chunk:
+  ;; 4 series up to moderate horizons): the product for them, then their balance while their
+  ;; rows are still in cache.
   (func (export "inflow") (param $I i32) (param $M i32) (param $O i32) (param $S i32) (param $D i32)
         (param $initOut i32) (param $stock0 i32) (param $n i32) (param $T i32)
-    (local $rb i32) (local $s0 i32) (local $i i32) (local $end i32) (local $s i32) (local $prev f64) (local $o f64) (local $v f64)
+    (local $rb i32) (local $s0 i32) (local $i i32) (local $end i32) (local $s i32) (local $prev f64) (local $o f64) (local $v f64) (local $ch i32)
     (local.set $rb (i32.shl (local.get $T) (i32.const 3)))
     (local.set $s0 (i32.const 0))
     (block $bdone
       (loop $bloop
         (br_if $bdone (i32.ge_u (local.get $s0) (local.get $n)))
+        (local.set $ch (call $chunk (local.get $T)))
+        (if (i32.gt_u (local.get $ch) (i32.sub (local.get $n) (local.get $s0))) (then (local.set $ch (i32.sub (local.get $n) (local.get $s0)))))
         (call $product (i32.add (local.get $I) (i32.mul (local.get $s0) (local.get $rb))) (local.get $M)
-                       (i32.add (local.get $O) (i32.mul (local.get $s0) (local.get $rb))) (i32.const 4) (local.get $T))
+                       (i32.add (local.get $O) (i32.mul (local.get $s0) (local.get $rb))) (local.get $ch) (local.get $T))
         (local.set $s (local.get $s0))
-        (local.set $s0 (i32.add (local.get $s0) (i32.const 4)))
+        (local.set $s0 (i32.add (local.get $s0) (local.get $ch)))
         (block $sdone
           (loop $sloop
             (br_if $sdone (i32.ge_u (local.get $s) (local.get $s0)))
