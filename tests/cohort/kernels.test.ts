@@ -218,3 +218,29 @@ describe("the cohort arena's allocator", () => {
     expect(arena.liveBytes).toBe(live0);
   });
 });
+
+describe("the cohort arena's group matrices", () => {
+  it("keeps the latest call's groups beyond the cache budget, and frees older calls' groups down to it", () => {
+    const arena = KernelArena.shared();
+    // 24 groups of 800 years: about 15 MB of matrices each, 370 MB in all, beyond the 256 MiB budget.
+    const T = 800;
+    const Ps = Array.from({ length: 24 }, (_, g) => triangular(T, (c, t) => (t - c === g % 7 ? 1 : 0)));
+    const S = new Float64Array(T * T);
+    arena.beginCall();
+    const first = Ps.map((P) => arena.groupMatrices(T, S, P, null));
+    for (const P of Ps) arena.unpin(P);
+    const kept = arena.liveBytes;
+    // The same groups in the next call: none is made again (the same arrays come back).
+    arena.beginCall();
+    Ps.forEach((P, g) => expect(arena.groupMatrices(T, S, P, null)).toBe(first[g]));
+    for (const P of Ps) arena.unpin(P);
+    expect(arena.liveBytes).toBe(kept);
+    // A call that uses one of them: the others (an older call's) go, down to the budget.
+    arena.beginCall();
+    arena.groupMatrices(T, S, Ps[0]!, null);
+    arena.unpin(Ps[0]!);
+    expect(arena.liveBytes).toBeLessThan(kept - 100 * 2 ** 20);
+    expect(arena.groupMatrices(T, S, Ps[0]!, null)).toBe(first[0]);
+    arena.unpin(Ps[0]!);
+  });
+});
