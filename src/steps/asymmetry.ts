@@ -51,18 +51,18 @@ export function groupedItems(a: AsymmetryInput): string {
 
 /**
  * Finds the pairs by sorting numbered keys when that is exact (see the file comment), else
- * falls back to grouping. `force` picks a way (for tests).
+ * falls back to grouping; `grouped` asks for the grouping (for tests).
  */
-export async function asymmetryItems(s: Session, a: AsymmetryInput, force?: AsymmetryItems["path"]): Promise<AsymmetryItems> {
+export async function asymmetryItems(s: Session, a: AsymmetryInput, grouped = false): Promise<AsymmetryItems> {
   const codes = ident(`${a.prefix}_codes`);
   const coms = ident(`${a.prefix}_coms`);
   const pairs = ident(`${a.prefix}_pairs`);
   const cleanup = async () => s.run(`DROP TABLE IF EXISTS ${codes}; DROP TABLE IF EXISTS ${coms}; DROP TABLE IF EXISTS ${pairs}`);
-  const grouped = async (): Promise<AsymmetryItems> => {
+  const byGrouping = async (): Promise<AsymmetryItems> => {
     await cleanup();
     return { items: groupedItems(a), path: "grouped text keys", cleanup: async () => {} };
   };
-  if (force === "grouped text keys") return grouped();
+  if (grouped) return byGrouping();
   const t = ident(a.trade);
   // Dictionaries of the codes (NULL kept, so that a NULL key sends us to the general way).
   await s.run(`CREATE OR REPLACE TEMP TABLE ${codes} AS SELECT code, CAST(row_number() OVER (ORDER BY code) - 1 AS BIGINT) AS id
@@ -75,9 +75,9 @@ export async function asymmetryItems(s: Session, a: AsymmetryInput, force?: Asym
   const R = Number(st.r), C = Number(st.c);
   const y0 = st.y0 == null ? 0 : Number(st.y0);
   const Y = st.y1 == null ? 1 : Number(st.y1) - y0 + 1;
-  // Keys up to 2·R²·C·Y must stay exact in a BIGINT (and in a double, for this check).
+  // Keys up to 2·R²·C·Y must stay exact in a BIGINT and in a double (the divisors below are written from doubles).
   const yearType = String((await s.one(`SELECT column_type FROM (DESCRIBE SELECT year FROM ${t})`)).column_type);
-  if (Number(st.rn) + Number(st.cn) + Number(st.yn) > 0 || R * C === 0 || 2 * R * R * C * Y >= 2 ** 62 || !/^(TINYINT|SMALLINT|INTEGER|BIGINT|UTINYINT|USMALLINT|UINTEGER)$/.test(yearType)) return grouped();
+  if (Number(st.rn) + Number(st.cn) + Number(st.yn) > 0 || R * C === 0 || 2 * R * R * C * Y >= 2 ** 53 || !/^(TINYINT|SMALLINT|INTEGER|BIGINT|UTINYINT|USMALLINT|UINTEGER)$/.test(yearType)) return byGrouping();
   const key = `((a.id * ${R} + b.id) * ${C} + c.id) * ${Y} + (t.year - ${y0})`;
   // Sorted by 2·key + (1 for imports): a report with the key and flow of the one before it is
   // a second report of the pair and flow (dup); an import after the export of its pair closes a pair.
@@ -89,7 +89,7 @@ export async function asymmetryItems(s: Session, a: AsymmetryInput, force?: Asym
                 CAST(commodity AS VARCHAR) AS commodity, year, flow, quantity FROM ${t} WHERE NOT mirrored) t
         JOIN ${codes} a ON a.code = t.importer JOIN ${codes} b ON b.code = t.exporter JOIN ${coms} c ON c.code = t.commodity))
     WHERE pk = k OR (k % 2 = 1 AND pk = k - 1)`);
-  if (Number(await s.scalar(`SELECT count(*) FROM ${pairs} WHERE dup`)) > 0) return grouped();
+  if (Number(await s.scalar(`SELECT count(*) FROM ${pairs} WHERE dup`)) > 0) return byGrouping();
   // Keys back to codes by list position (the dictionaries are small); computed for failing items only.
   const m = fromUnits("CAST(m_units AS HUGEINT)");
   const x = fromUnits("CAST(x_units AS HUGEINT)");

@@ -11,8 +11,8 @@ beforeAll(async () => {
 });
 afterAll(() => s.close());
 
-async function items(table: string, force?: "sorted keys" | "grouped text keys") {
-  const a = await asymmetryItems(s, { trade: table, prefix: `__t_${table}`, threshold: 0.25 }, force);
+async function items(table: string, grouped = false) {
+  const a = await asymmetryItems(s, { trade: table, prefix: `__t_${table}`, threshold: 0.25 }, grouped);
   const rows = await s.all(`SELECT CAST(keys AS VARCHAR) AS keys, year, observed, expected, tolerance, message FROM (${a.items}) ORDER BY ALL`);
   await a.cleanup();
   return { path: a.path, rows };
@@ -30,7 +30,7 @@ describe("trade asymmetry: pairs found by sorted numbered keys = pairs found by 
       SELECT exp, imp, commodity, 'export', year, (1 + (hash(imp, commodity, year) % 10000) / 7.0) * (0.7 + (hash(exp, year) % 60) / 100.0), FALSE FROM k WHERE who IN (0, 2)
       UNION ALL SELECT 'R1', 'R2', 'C1', 'export', 2003, 5.0, TRUE`);
     const sorted = await items("tr");
-    const grouped = await items("tr", "grouped text keys");
+    const grouped = await items("tr", true);
     expect(sorted.path).toBe("sorted keys");
     expect(grouped.path).toBe("grouped text keys");
     expect(sorted.rows.length).toBeGreaterThan(200);
