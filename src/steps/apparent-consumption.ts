@@ -76,9 +76,11 @@ export const apparentConsumptionStep = defineStep({
     }
 
     // Trade asymmetry where both sides report (asymmetry.ts: pairs found by sorting numbered keys, or by grouping).
+    ctx.progress.info(`step ${id}: trade-asymmetry audit`);
     const asym = await asymmetryItems(s, { trade: `__${id}_trade`, prefix: `__${id}_asym`, threshold: a.asymmetry_threshold });
-    await ctx.audits.check({ step: id, check: "trade-asymmetry", severity: a.asymmetry_severity, items: asym.items, failMessage: "trade asymmetry" });
+    const ar = await ctx.audits.check({ step: id, check: "trade-asymmetry", severity: a.asymmetry_severity, items: asym.items, failMessage: "trade asymmetry" });
     await asym.cleanup();
+    ctx.progress.info(`step ${id}: ${ar.items} pairs of reports compared (pairs found by ${asym.path}), ${ar.failed} beyond the threshold`);
 
     // One long view of flows: production rows and trade rows (reporter as region), one quantity
     // per row named by its kind (production, imports, exports), never copied.
@@ -94,6 +96,7 @@ export const apparentConsumptionStep = defineStep({
     if (unknownKeys.length) throw new DataError(`step ${id}: keys ${unknownKeys.join(", ")} not available; choose among ${available.join(", ")}`);
     const extra: { name: string; keys: string[] }[] = [];
     if (o.concordance) {
+      ctx.progress.info(`step ${id}: applying the concordance (table ${o.concordance}) and summing consumption`);
       await applyConcordance(ctx, {
         step: id, input: `__${id}_flows`, groupKeys: ["region"], values: ["production", "imports", "exports"], flags: ["mirrored"], long: { kind: "kind", value: "quantity" },
         concordance: o.concordance, outputKeys: keys, output: `__${id}_raw`, unmapped: `${id}_unmapped`,
