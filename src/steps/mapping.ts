@@ -82,7 +82,8 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   const isPiece = hasUnit ? `i.unit = 'piece'` : "FALSE";
   const L = r.long;
   const massedValues = L
-    ? `i.${ident(L.kind)} AS __kind, CASE WHEN ${isPiece} THEN i.${ident(L.value)} * u.unit_mass ELSE i.${ident(L.value)} END AS __value, i.${ident(L.value)} AS __orig_value`
+    ? `i.${ident(L.kind)} AS __kind, CASE WHEN ${isPiece} THEN i.${ident(L.value)} * u.unit_mass ELSE i.${ident(L.value)} END AS __value, i.${ident(L.value)} AS __orig_value,
+      ${exactUnits(`coalesce(CASE WHEN ${isPiece} THEN i.${ident(L.value)} * u.unit_mass ELSE i.${ident(L.value)} END, 0)`)} AS __units`
     : `${r.values.map((v) => `CASE WHEN ${isPiece} THEN i.${ident(v)} * u.unit_mass ELSE i.${ident(v)} END AS ${ident(v)}`).join(", ")},
       ${r.values.map((v) => `i.${ident(v)} AS ${ident("__orig_" + v)}`).join(", ")}`;
   await s.run(`CREATE OR REPLACE VIEW ${massed} AS
@@ -102,7 +103,7 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
   // counts each input row once (__once: its first concordance row, or none).
   const extraKeys = outKeys.filter((k) => !g.includes(k));
   const joined = `(SELECT m.*, ${extraKeys.map((k) => `c.${ident(k)}, `).join("")}c.factor AS __factor, c.share AS __share, coalesce(c.__first, TRUE) AS __once
-      ${L ? `, ${exactUnits("m.__value * c.factor * c.share")} AS __mapped, ${exactUnits("coalesce(m.__value, 0) * c.share")} AS __dist, ${exactUnits("coalesce(m.__value, 0)")} AS __units` : ""}
+      ${L ? `, ${exactUnits("m.__value * c.factor * c.share")} AS __mapped, ${exactUnits("coalesce(m.__value, 0) * c.share")} AS __dist` : ""}
     FROM ${massed} m LEFT JOIN ${conc} c ON c.commodity = CASE WHEN m.reason IS NULL THEN m.commodity END) j`; // an equi-join (an extra condition in ON is far slower)
   const fine = [...new Set([...outKeys, ...g])];
   const parts = ident(`__parts_${r.step}`);
