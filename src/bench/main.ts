@@ -62,7 +62,7 @@ async function main(): Promise<void> {
       const t = runStage(["table", "--size", s, "--runs", "1", "--memory-limit", mem]);
       scaling.push({ table_rows: Number(t.table_rows), seconds: Number(t.table_stage_s), hand_written_s: Number(t.table_raw_duckdb_s), peak_rss_bytes: Number(t.table_stage_peak_rss_bytes) });
     }
-    for (const y of [50, 100, 200, 400]) {
+    for (const y of [50, 100, 200, 400, 800]) {
       const c = runStage(["cohort", "--series", "10000", "--years", String(y), "--groups", "100", "--runs", "1"]);
       scaling.push({ cohort_years: y, inflow_driven_s: Number(c.inflow_driven_s), cells_per_s: Number(c.inflow_driven_cells_per_s) });
     }

@@ -130,7 +130,7 @@
   (func $chunk (export "chunk") (param $T i32) (result i32)
     (local $ch i32)
     (if (i32.le_u (local.get $T) (i32.const 362)) (then (return (i32.const 4))))
-    (local.set $ch (i32.and (i32.div_u (i32.const 131072) (local.get $T)) (i32.const -4)))
+    (local.set $ch (i32.and (i32.div_u (i32.const 32768) (local.get $T)) (i32.const -4)))
     (if (result i32) (i32.lt_u (local.get $ch) (i32.const 4)) (then (i32.const 4)) (else (local.get $ch))))
 
   ;; Inflow-driven model in one call: outflow O = product(I, M) (+ initOut, the initial
