@@ -33,7 +33,11 @@ export interface AsymmetryItems {
   cleanup: () => Promise<void>;
 }
 
-const message = (threshold: number) => `'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(threshold * 100))} || ' %'`;
+/** The audit items from pairs `p` (importer, exporter, commodity, year, m = imports, x = exports). */
+const itemsOf = (threshold: number) => `SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
+      m AS observed, x AS expected, ${threshold} * greatest(abs(m), abs(x)) AS tolerance,
+      'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(threshold * 100))} || ' %' AS message
+    FROM p`;
 
 /** The general way: one group per (importer, exporter, commodity, year), any number of reports in each. */
 export function groupedItems(a: AsymmetryInput): string {
@@ -44,9 +48,7 @@ export function groupedItems(a: AsymmetryInput): string {
               CAST(commodity AS VARCHAR) AS commodity, year, flow, ${exactUnits("quantity")} AS __units
             FROM ${ident(a.trade)} WHERE NOT mirrored)
       GROUP BY importer, exporter, commodity, year HAVING bool_or(flow = 'import') AND bool_or(flow = 'export'))
-    SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
-      m AS observed, x AS expected, ${a.threshold} * greatest(abs(m), abs(x)) AS tolerance, ${message(a.threshold)} AS message
-    FROM p`;
+    ${itemsOf(a.threshold)}`;
 }
 
 /**
@@ -99,9 +101,7 @@ export async function asymmetryItems(s: Session, a: AsymmetryInput, grouped = fa
         (SELECT list(code ORDER BY id) FROM ${coms})[(k // ${Y}) % ${C} + 1] AS commodity,
         CAST(k % ${Y} + ${y0} AS BIGINT) AS year, ${m} AS m, ${x} AS x
       FROM ${pairs})
-    SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
-      m AS observed, x AS expected, ${a.threshold} * greatest(abs(m), abs(x)) AS tolerance, ${message(a.threshold)} AS message
-    FROM p`;
+    ${itemsOf(a.threshold)}`;
   return { items, path: "sorted keys", cleanup };
 }
 
