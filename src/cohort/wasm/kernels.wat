@@ -127,7 +127,7 @@
   ;; Series per chunk for horizon T (a multiple of 4). While the panels of M (about 4·T² bytes)
   ;; fit a second-level cache of 512 KB (T ≤ 362), 4: each 4 series read all of M from
   ;; there. Beyond, chunks whose rows of inp take about 256 KB (at least 4 series).
-  (func $chunk (export "chunk") (param $T i32) (result i32)
+  (func $chunk (param $T i32) (result i32)
     (local $ch i32)
     (if (i32.le_u (local.get $T) (i32.const 362)) (then (return (i32.const 4))))
     (local.set $ch (i32.and (i32.div_u (i32.const 32768) (local.get $T)) (i32.const -4)))
