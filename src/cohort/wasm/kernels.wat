@@ -141,13 +141,14 @@
   ;; rows are still in cache.
   (func (export "inflow") (param $I i32) (param $M i32) (param $O i32) (param $S i32) (param $D i32)
         (param $initOut i32) (param $stock0 i32) (param $n i32) (param $T i32)
-    (local $rb i32) (local $s0 i32) (local $i i32) (local $end i32) (local $s i32) (local $prev f64) (local $o f64) (local $v f64) (local $ch i32)
+    (local $rb i32) (local $s0 i32) (local $i i32) (local $end i32) (local $s i32) (local $prev f64) (local $o f64) (local $v f64) (local $ch i32) (local $full i32)
     (local.set $rb (i32.shl (local.get $T) (i32.const 3)))
+    (local.set $full (call $chunk (local.get $T)))
     (local.set $s0 (i32.const 0))
     (block $bdone
       (loop $bloop
         (br_if $bdone (i32.ge_u (local.get $s0) (local.get $n)))
-        (local.set $ch (call $chunk (local.get $T)))
+        (local.set $ch (local.get $full))
         (if (i32.gt_u (local.get $ch) (i32.sub (local.get $n) (local.get $s0))) (then (local.set $ch (i32.sub (local.get $n) (local.get $s0)))))
         (call $product (i32.add (local.get $I) (i32.mul (local.get $s0) (local.get $rb))) (local.get $M)
                        (i32.add (local.get $O) (i32.mul (local.get $s0) (local.get $rb))) (local.get $ch) (local.get $T))
