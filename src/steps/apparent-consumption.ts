@@ -6,7 +6,7 @@
 import { z } from "zod";
 import { ColumnMap, Name } from "../spec/common.js";
 import { DataError } from "../errors.js";
-import { exactSum, exactTotal, exactUnits, ident, idents, keyMap, lit } from "../engine/sql.js";
+import { exactTotal, exactUnits, ident, idents, keyMap, lit } from "../engine/sql.js";
 import { defineStep } from "./types.js";
 import { applyConcordance } from "./mapping.js";
 import { asymmetryItems } from "./asymmetry.js";
