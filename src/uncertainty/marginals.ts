@@ -16,7 +16,7 @@
  * by exact quadrature). Truncated normal: normal.ts.
  */
 import pkg from "jstat";
-import { normCdf, normQuantile, truncatedNormal, truncatedNormalCdf, truncatedNormalQuantile } from "./normal.js";
+import { normCdf, normCdfFast, normQuantile, truncatedNormal, truncatedNormalCdf, truncatedNormalQuantile } from "./normal.js";
 
 const { jStat } = pkg;
 
@@ -42,7 +42,7 @@ const P_MIN = 2 ** -1074;
 const P_MAX = 1 - 2 ** -53;
 
 function scoreToP(z: number): number {
-  const p = normCdf(z);
+  const p = normCdfFast(z);
   return p < P_MIN ? P_MIN : p > P_MAX ? P_MAX : p;
 }
 

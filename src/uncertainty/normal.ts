@@ -6,7 +6,12 @@
  * was not used: it refines through erfc = 1 − erf and loses precision in the tails (relative error
  * 2e−8 at p = 1e−10, wrong at p = 1e−100), and costs about 390 ns a call.
  * Φ and Q = 1 − Φ come from src/cohort/special.ts (each computed directly, full precision in the
- * tails).
+ * tails). `normCdfFast` is Φ through erfc by Cody's rational Chebyshev approximations (W. J. Cody,
+ * "Rational Chebyshev approximations for the error function", Mathematics of Computation 23,
+ * 1969, 631–637; the coefficient sets of his SPECFUN routine CALERF), about 15× faster than the
+ * series/continued fraction of special.ts, relative error within (1 + z²)·4e−16 (the rounding
+ * of z/√2 grows with the tail: 3e−14 at z = −8, 2e−13 at z = −37); used for the copula map of
+ * each draw.
  *
  * Lower truncation at a of N(μ, σ²): α = (a − μ)/σ, λ = φ(α)/Q(α) (the inverse Mills ratio);
  * mean μ + σλ, variance σ²(1 + αλ − λ²) (Johnson, Kotz & Balakrishnan, Continuous Univariate
@@ -89,6 +94,54 @@ export function normQuantile(p: number): number {
         1);
   }
   return q < 0 ? -x : x;
+}
+
+const SQRPI = 5.6418958354775628695e-1; // 1/√π
+
+/** erfc(y) for y ≥ 0 (Cody 1969, CALERF). */
+function erfcPos(y: number): number {
+  if (y <= 0.46875) {
+    const z = y * y;
+    const num = (((1.85777706184603153e-1 * z + 3.16112374387056560) * z + 1.13864154151050156e2) * z + 3.77485237685302021e2) * z + 3.20937758913846947e3;
+    const den = (((z + 2.36012909523441209e1) * z + 2.44024637934444173e2) * z + 1.28261652607737228e3) * z + 2.84423683343917062e3;
+    return 1 - (y * num) / den;
+  }
+  let r: number;
+  if (y <= 4) {
+    const num =
+      (((((((2.15311535474403846e-8 * y + 5.64188496988670089e-1) * y + 8.88314979438837594) * y + 6.61191906371416295e1) * y + 2.98635138197400131e2) * y +
+        8.81952221241769090e2) *
+        y +
+        1.71204761263407058e3) *
+        y +
+        2.05107837782607147e3) *
+        y +
+      1.23033935479799725e3;
+    const den =
+      (((((((y + 1.57449261107098347e1) * y + 1.17693950891312499e2) * y + 5.37181101862009858e2) * y + 1.62138957456669019e3) * y + 3.29079923573345963e3) * y +
+        4.36261909014324716e3) *
+        y +
+        3.43936767414372164e3) *
+        y +
+      1.23033935480374942e3;
+    r = num / den;
+  } else {
+    if (y >= 26.6) return 0;
+    const z = 1 / (y * y);
+    const num = ((((1.63153871373020978e-2 * z + 3.05326634961232344e-1) * z + 3.60344899949804439e-1) * z + 1.25781726111229246e-1) * z + 1.60837851487422766e-2) * z + 6.58749161529837803e-4;
+    const den = ((((z + 2.56852019228982242) * z + 1.87295284992346047) * z + 5.27905102951428412e-1) * z + 6.05183413124413191e-2) * z + 2.33520497626869185e-3;
+    r = (SQRPI - (z * num) / den) / y;
+  }
+  // exp(−y²) in two factors, as CALERF does, so the rounding of y² is not amplified.
+  const ysq = Math.trunc(y * 16) / 16;
+  const del = (y - ysq) * (y + ysq);
+  return Math.exp(-ysq * ysq) * Math.exp(-del) * r;
+}
+
+/** Standard normal CDF Φ(z) by Cody's erfc (fast; for the per-draw copula map). */
+export function normCdfFast(z: number): number {
+  const x = -z * Math.SQRT1_2;
+  return x >= 0 ? 0.5 * erfcPos(x) : 1 - 0.5 * erfcPos(-x);
 }
 
 /** Φ⁻¹ of the upper-tail probability q: the z with Q(z) = q, exact for tiny q. */

@@ -4,7 +4,7 @@
  */
 import { describe, expect, it } from "vitest";
 import normalCdf from "@stdlib/stats-base-dists-normal-cdf";
-import { normQuantile, truncatedNormal } from "../../src/uncertainty/normal.js";
+import { normCdfFast, normQuantile, truncatedNormal } from "../../src/uncertainty/normal.js";
 import { truncatedNormalMarginal } from "../../src/uncertainty/marginals.js";
 
 const rel = (a: number, b: number) => Math.abs(a - b) / Math.abs(b);
@@ -82,5 +82,17 @@ describe("lower-truncated normal", () => {
 
   it("refuses a truncation that leaves nothing of the normal", () => {
     expect(() => truncatedNormal(0, 1, 40)).toThrow(/40 .*standard deviations above the centre 0.*accepted/);
+  });
+});
+
+describe("normCdfFast (Cody 1969)", () => {
+  it("agrees with the @stdlib normal CDF within (1 + z²)·4e-16 relative (the rounding of z/√2, amplified by the tail)", () => {
+    // Source: @stdlib/stats-base-dists-normal-cdf (reference library); the upper side is compared
+    // in absolute terms (Φ near 1).
+    for (let z = -8; z <= 0; z += 0.0625) expect(rel(normCdfFast(z), normalCdf(z, 0, 1))).toBeLessThan((1 + z * z) * 4e-16);
+    for (let z = 0; z <= 8; z += 0.0625) expect(Math.abs(normCdfFast(z) - normalCdf(z, 0, 1))).toBeLessThan(2.3e-16);
+    for (const z of [-12, -20, -30, -37]) expect(rel(normCdfFast(z), normalCdf(z, 0, 1))).toBeLessThan((1 + z * z) * 4e-16);
+    expect(normCdfFast(-40)).toBe(0);
+    expect(normCdfFast(40)).toBe(1);
   });
 });
