@@ -18,8 +18,8 @@ export function registerCheck(program: Command): void {
         if (o.json) process.stdout.write(JSON.stringify({ status: "ok", ...r }) + "\n");
         else {
           process.stdout.write(`${file}: valid; ${r.sources.length} source(s), ${r.steps.length} step(s)\n`);
-          for (const s of r.sources) process.stdout.write(`  source ${s.name}: ${s.files} file(s), columns ${s.columns.join(", ")}\n`);
-          for (const s of r.steps) process.stdout.write(`  step ${s.id} (${s.kind}) reads ${s.reads.join(", ") || "-"}\n`);
+          for (const s of r.sources) process.stdout.write(`  source ${s.name}: ${s.files} file(s), columns ${s.columns.join(", ")}${s.rows !== undefined ? `; ${s.rows} rows read and checked` : ""}\n`);
+          for (const s of r.steps) process.stdout.write(`  step ${s.id} (${s.kind}) reads ${s.reads.join(", ") || "-"}; produces ${s.outputs.map((o) => o.name).join(", ")}\n`);
         }
       } catch (e) {
         fail(e, o.json, exitCodeOf(e));

@@ -9,16 +9,18 @@ export function printReport(r: RunReport): string {
   const lines: string[] = [];
   lines.push(r.status === "ok" ? `run complete: ${r.run_dir}` : `run FAILED (exit ${r.exit_code}); kept for inspection: ${r.run_dir}`);
   if (r.error) lines.push(r.error);
-  for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rowsLoaded} rows loaded, ${s.rowsRejected} rejected, ${s.rowsFiltered} filtered out`);
+  for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rows_loaded} rows loaded, ${s.rows_rejected} rejected, ${s.rows_filtered} filtered out`);
   for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
   if (r.audit) {
     lines.push(`audit: ${r.audit.errors} error item(s), ${r.audit.warnings} warning item(s) failed`);
+    const w = (x: number | null, u: string | null) => (x == null ? "-" : `${x.toPrecision(3)}${u ? ` ${u}` : ""}`);
+    lines.push(`  ${"step".padEnd(18)} ${"check".padEnd(36)} ${"severity".padEnd(8)} ${"status".padEnd(6)} ${"items".padStart(8)} ${"failed".padStart(7)}  worst |residual| (failing)`);
     for (const c of r.audit.checks) {
-      lines.push(`  ${c.step.padEnd(18)} ${c.check.padEnd(36)} ${c.severity.padEnd(7)} ${String(c.items).padStart(8)} checked ${String(c.failed).padStart(6)} failed${c.worst_residual != null ? `  worst |residual| ${c.worst_residual.toPrecision(3)}` : ""}`);
+      lines.push(`  ${c.step.padEnd(18)} ${c.check.padEnd(36)} ${c.severity.padEnd(8)} ${(c.status === "fail" ? "FAIL" : "pass").padEnd(6)} ${String(c.items).padStart(8)} ${String(c.failed).padStart(7)}  ${w(c.worst_residual, c.unit)}${c.failed ? ` (${w(c.worst_failing_residual, c.unit)})` : ""}`);
     }
     if (r.audit.worst.length) {
       lines.push("worst failing items:");
-      for (const w of r.audit.worst) lines.push(`  ${w.step} ${w.check} ${JSON.stringify(w.keys)}${w.year != null ? ` ${w.year}` : ""}: ${w.message}`);
+      for (const x of r.audit.worst) lines.push(`  ${x.step} ${x.check} ${JSON.stringify(x.keys)}${x.year != null ? ` ${x.year}` : ""}: ${x.message}`);
     }
   }
   lines.push("Results are estimates; see the manifest's method and caution before publishing.");

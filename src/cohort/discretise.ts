@@ -33,22 +33,20 @@ export function survivalVector(lt: Lifetime, n: number): Float64Array {
   return flush(out);
 }
 
+/** p(a): the share of a cohort leaving at age a, from whichever of F or S is accurate there. */
+export function leavingAt(lt: Lifetime, a: number): number {
+  if (lt.sigmaAt) return a === 0 ? 1 - lt.sigmaAt(0) : lt.sigmaAt(a - 1) - lt.sigmaAt(a);
+  const hi = a + 0.5;
+  const fhi = lt.cdf(hi);
+  if (a === 0) return fhi; // includes any mass below age 0 (normal family)
+  if (fhi <= 0.5) return fhi - lt.cdf(a - 0.5);
+  return lt.sf(a - 0.5) - lt.sf(hi);
+}
+
 /** p(0..n − 1), each computed from whichever of F or S is accurate at that age. */
 export function leavingVector(lt: Lifetime, n: number): Float64Array {
   const out = new Float64Array(n);
-  if (lt.sigmaAt) {
-    for (let a = 0; a < n; a++) out[a] = lt.sigmaAt(a - 1 < 0 ? -1 : a - 1) - lt.sigmaAt(a);
-    out[0] = 1 - lt.sigmaAt(0);
-    return flush(out);
-  }
-  for (let a = 0; a < n; a++) {
-    const hi = a + 0.5;
-    const lo = a - 0.5;
-    const fhi = lt.cdf(hi);
-    if (a === 0) out[a] = fhi; // includes any mass below age 0 (normal family)
-    else if (fhi <= 0.5) out[a] = fhi - lt.cdf(lo);
-    else out[a] = lt.sf(lo) - lt.sf(hi);
-  }
+  for (let a = 0; a < n; a++) out[a] = leavingAt(lt, a);
   return flush(out);
 }
 

@@ -29,7 +29,10 @@ export function makeLifetime(row: LifetimeParams, where: string, curves?: CurveL
     }
   }
   const fam = family(name);
-  if (!fam) throw new Error(`${where}: unknown distribution ${JSON.stringify(name)}; accepted: ${DISTRIBUTION_NAMES.join(", ")}`);
+  if (!fam) {
+    const near = nearestName(name, DISTRIBUTION_NAMES);
+    throw new Error(`${where}: unknown distribution ${JSON.stringify(name)}${near ? `; did you mean ${JSON.stringify(near)}?` : ""} (accepted: ${DISTRIBUTION_NAMES.join(", ")})`);
+  }
   const set = fam.paramSets.find((ps) => ps.every((p) => given.includes(p as never)) && given.every((g) => ps.includes(g)));
   if (!set) {
     const options = fam.paramSets.map((ps) => ps.join(" and ")).join(", or ");
@@ -50,4 +53,26 @@ export function makeLifetime(row: LifetimeParams, where: string, curves?: CurveL
     if (e instanceof ParamError) throw new Error(`${where}: parameter ${e.param}: ${e.message}`);
     throw e;
   }
+}
+
+/** The closest name by edit distance, when close enough to be a likely typo. */
+export function nearestName(word: string, names: readonly string[]): string | undefined {
+  const w = word.toLowerCase();
+  let best: string | undefined;
+  let bestD = Infinity;
+  for (const c of names) {
+    const d = editDistance(w, c.toLowerCase());
+    if (d < bestD) [best, bestD] = [c, d];
+  }
+  return best !== undefined && bestD <= Math.max(2, Math.floor(word.length / 3)) ? best : undefined;
+}
+
+function editDistance(a: string, b: string): number {
+  let prev = Array.from({ length: b.length + 1 }, (_, j) => j);
+  for (let i = 1; i <= a.length; i++) {
+    const cur = [i];
+    for (let j = 1; j <= b.length; j++) cur[j] = Math.min(prev[j]! + 1, cur[j - 1]! + 1, prev[j - 1]! + (a[i - 1] === b[j - 1] ? 0 : 1));
+    prev = cur;
+  }
+  return prev[b.length]!;
 }

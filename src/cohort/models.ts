@@ -6,7 +6,7 @@
  * index t = year − firstYear). Cohort c is the cohort entering in year index c.
  */
 import type { Lifetime } from "./distributions/types.js";
-import { leavingVector, sigmaAt, survivalVector, ageHorizon } from "./discretise.js";
+import { leavingAt, leavingVector, sigmaAt, survivalVector, ageHorizon, NEGLIGIBLE_SHARE } from "./discretise.js";
 import { cohortProduct, stockDrivenSolve, wasmKernels } from "./kernels.js";
 import { wasmInflow } from "./wasm/index.js";
 import { balanceFromOutflow } from "./balance.js";
@@ -29,8 +29,8 @@ export interface InitialStock {
   /** n: total per series (used for the steady-state structure; ignored when byAge is given). */
   total: Float64Array;
   A: number;
-  /** The curve for the cohort of age a (cohort year t0 − 1 − a), a = 0..A−1. */
-  curves: Curve[];
+  /** The curve for the cohort of age a (cohort year t0 − 1 − a), a = 0..A−1 (undefined: no stock of that age). */
+  curves: (Curve | undefined)[];
 }
 
 /** A batch of series sharing one lifetime per cohort (so one survival matrix). */
@@ -124,32 +124,43 @@ export interface ModelResult {
 export interface InitialContribution {
   stock0: Float64Array; // n: stock at the end of t0 − 1
   stock: Float64Array; // n × T
+  /** n × T: what leaves each year, q·p(a + t + 1)/σ(a) per age (each leaving share computed where it is accurate, not as a difference of stocks). */
+  outflow: Float64Array;
   ageSum: Float64Array; // n × T: Σ age × stock
   outAgeSum: Float64Array; // n × T
   tooOld: Float64Array; // n
 }
 
 /** Per unit of each initial age a: the share left at the end of year index t, σ(a + t + 1)/σ(a) (0 when σ(a) = 0). */
-function initialUnits(init: InitialStock, T: number): { unit: Float64Array; live: Uint8Array; steady: Float64Array | null } {
+function initialUnits(init: InitialStock, T: number, withLeaving = false): { unit: Float64Array; leave: Float64Array | null; live: Uint8Array; steady: Float64Array | null } {
   const { A, curves } = init;
   const unit = new Float64Array(A * T);
+  const leave = withLeaving ? new Float64Array(A * T) : null;
   const live = new Uint8Array(A);
   for (let a = 0; a < A; a++) {
-    const cu = curves[a]!;
+    const cu = curves[a];
+    if (!cu) continue; // no stock of this age (a continued model's empty ages)
     const sa = sigmaAt(cu.lifetime, a);
     if (sa > 0) {
       live[a] = 1;
-      for (let t = 0; t < T; t++) unit[a * T + t] = sigmaAt(cu.lifetime, a + t + 1) / sa;
+      for (let t = 0; t < T; t++) {
+        const u = sigmaAt(cu.lifetime, a + t + 1) / sa;
+        unit[a * T + t] = u < NEGLIGIBLE_SHARE ? 0 : u;
+        if (leave) {
+          const l = leavingAt(cu.lifetime, a + t + 1) / sa;
+          leave[a * T + t] = Math.abs(l) < NEGLIGIBLE_SHARE ? 0 : l;
+        }
+      }
     }
   }
   let steady: Float64Array | null = null;
   if (!init.byAge) {
     steady = new Float64Array(A);
     let tot = 0;
-    for (let a = 0; a < A; a++) tot += steady[a] = sigmaAt(curves[a]!.lifetime, a);
+    for (let a = 0; a < A; a++) tot += steady[a] = curves[a] ? sigmaAt(curves[a]!.lifetime, a) : 0;
     for (let a = 0; a < A; a++) steady[a]! /= tot;
   }
-  return { unit, live, steady };
+  return { unit, leave, live, steady };
 }
 
 /**
@@ -185,14 +196,25 @@ export function* initialCohorts(init: InitialStock, n: number, T: number): Gener
   }
 }
 
+/** The initial stock by age per series (n × A), from `byAge` or from the steady-state shares of `total`. */
+export function initialAmounts(init: InitialStock, n: number): Float64Array {
+  if (init.byAge) return init.byAge;
+  const { A } = init;
+  const { steady } = initialUnits({ ...init, byAge: null }, 0);
+  const out = new Float64Array(n * A);
+  for (let s = 0; s < n; s++) for (let a = 0; a < A; a++) out[s * A + a] = steady![a]! * init.total[s]!;
+  return out;
+}
+
 export function initialContribution(init: InitialStock, n: number, T: number): InitialContribution {
   const { A } = init;
   const stock0 = new Float64Array(n);
   const stock = new Float64Array(n * T);
+  const outflow = new Float64Array(n * T);
   const ageSum = new Float64Array(n * T);
   const outAgeSum = new Float64Array(n * T);
   const tooOld = new Float64Array(n);
-  const { unit, live, steady } = initialUnits(init, T);
+  const { unit, leave, live, steady } = initialUnits(init, T, true);
   const shares = new Float64Array(A);
   for (let s = 0; s < n; s++) {
     if (init.byAge) for (let a = 0; a < A; a++) shares[a] = init.byAge[s * A + a]!;
@@ -204,22 +226,25 @@ export function initialContribution(init: InitialStock, n: number, T: number): I
       s0 += q;
       if (!live[a]) {
         tooOld[s] += q;
-        outAgeSum[s * T] += q * (a + 1.5);
+        if (T > 0) {
+          outflow[s * T] += q;
+          outAgeSum[s * T] += q * (a + 1.5);
+        }
         continue;
       }
-      let prev = q;
       for (let t = 0; t < T; t++) {
         const v = q * unit[a * T + t]!;
+        const o = q * leave![a * T + t]!;
         const age = a + t + 1.5;
         stock[s * T + t] += v;
+        outflow[s * T + t] += o;
         ageSum[s * T + t] += v * age;
-        outAgeSum[s * T + t] += (prev - v) * age;
-        prev = v;
+        outAgeSum[s * T + t] += o * age;
       }
     }
     stock0[s] = s0;
   }
-  return { stock0, stock, ageSum, outAgeSum, tooOld };
+  return { stock0, stock, outflow, ageSum, outAgeSum, tooOld };
 }
 
 /** Caller-provided result arrays (n × T each), e.g. buffers handed to a worker thread. */
@@ -247,19 +272,7 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
   if (rate !== null) return firstOrderDecay(inflow, n, T, rate, opts);
   if (wasmKernels()) {
     // One WebAssembly call: outflow, the initial stock's outflow, and the balance.
-    let initOut: Float64Array | null = null;
-    if (init) {
-      initOut = new Float64Array(n * T);
-      for (let s = 0; s < n; s++) {
-        let prev = init.stock0[s]!;
-        for (let t = 0; t < T; t++) {
-          const v = init.stock[s * T + t]!;
-          initOut[s * T + t] = prev - v;
-          prev = v;
-        }
-      }
-    }
-    const w = wasmInflow(inflow, n, T, g.P, initOut, init?.stock0 ?? null, opts.out);
+    const w = wasmInflow(inflow, n, T, g.P, init?.outflow ?? null, init?.stock0 ?? null, opts.out);
     const r: ModelResult = { inflow, ...w };
     if (opts.indicators) addIndicators(g, r, n, init);
     if (init) r.initialTooOld = init.tooOld;
@@ -267,16 +280,7 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
   }
   const outflow = opts.out?.outflow ?? new Float64Array(n * T);
   cohortProduct(inflow, n, T, g.P, outflow);
-  if (init) {
-    for (let s = 0; s < n; s++) {
-      let prev = init.stock0[s]!;
-      for (let t = 0; t < T; t++) {
-        const v = init.stock[s * T + t]!;
-        outflow[s * T + t] += prev - v;
-        prev = v;
-      }
-    }
-  }
+  if (init) for (let i = 0; i < n * T; i++) outflow[i] += init.outflow[i]!;
   const stock = opts.out?.stock ?? new Float64Array(n * T);
   const stockChange = opts.out?.stockChange ?? new Float64Array(n * T);
   balanceFromOutflow(inflow, outflow, null, init?.stock0 ?? null, n, T, stock, stockChange);
@@ -309,7 +313,8 @@ function addIndicators(g: CohortGroup, r: ModelResult, n: number, init: InitialC
  * First-order decay (exponential lifetime, rate k = 1/mean), exact in the midpoint convention:
  *   stock(t) = e^(−k)·stock(t − 1) + e^(−k/2)·I(t)
  *   outflow(t) = (1 − e^(−k))·stock(t − 1) + (1 − e^(−k/2))·I(t)
- * O(years) per series; the initial stock decays the same way whatever its ages.
+ * O(years) per series for the model cohorts; an initial stock adds its own contribution
+ * (computed with each initial cohort's own lifetime, which a continued model may not share).
  */
 export function firstOrderDecay(inflow: Float64Array, n: number, T: number, k: number, opts: ModelOptions = {}): ModelResult {
   const init = opts.initial ?? null;
@@ -324,28 +329,29 @@ export function firstOrderDecay(inflow: Float64Array, n: number, T: number, k: n
   const mas = ind ? new Float64Array(n * T) : undefined;
   const mao = ind ? new Float64Array(n * T) : undefined;
   for (let s = 0; s < n; s++) {
-    let prev = init ? init.stock0[s]! : 0;
-    // Age sum of the initial stock at the end of t0 − 1 (midpoint ages), from its first-year survivors.
+    let prev = 0; // the model cohorts' stock
     let ageSum = 0;
-    if (init && ind) {
-      const surv1 = init.stock[s * T]!;
-      ageSum = surv1 > 0 ? (init.ageSum[s * T]! / surv1 - 1) * prev : 0;
-    }
+    let prevTotal = init ? init.stock0[s]! : 0;
     for (let t = 0; t < T; t++) {
       const i = s * T + t;
       const I = inflow[i]!;
       const v = e1 * prev + eh * I;
-      outflow[i] = l1 * prev + lh * I;
-      stock[i] = v;
-      stockChange[i] = v - prev;
+      const o = l1 * prev + lh * I;
+      const total = v + (init ? init.stock[i]! : 0);
+      outflow[i] = o + (init ? init.outflow[i]! : 0);
+      stock[i] = total;
+      stockChange[i] = total - prevTotal;
       if (ind) {
         const oldAge = ageSum + prev; // survivors age by one year
         const newAge = ageSum = e1 * oldAge + eh * 0.5 * I;
-        mas![i] = v > 0 ? newAge / v : NaN;
         const outAge = l1 * oldAge + lh * 0.5 * I;
-        mao![i] = outflow[i]! > 0 ? outAge / outflow[i]! : NaN;
+        const as = newAge + (init ? init.ageSum[i]! : 0);
+        const ao = outAge + (init ? init.outAgeSum[i]! : 0);
+        mas![i] = total > 0 ? as / total : NaN;
+        mao![i] = outflow[i]! > 0 ? ao / outflow[i]! : NaN;
       }
       prev = v;
+      prevTotal = total;
     }
   }
   const r: ModelResult = { inflow, outflow, stock, stockChange };

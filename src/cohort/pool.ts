@@ -52,7 +52,7 @@ export interface ArenaTask {
   St: ArenaRef | null;
   values: ArenaRef;
   content: ArenaRef | null;
-  initial: { stock0: ArenaRef; stock: ArenaRef; ageSum: ArenaRef; outAgeSum: ArenaRef; tooOld: ArenaRef } | null;
+  initial: { stock0: ArenaRef; stock: ArenaRef; outflow: ArenaRef; ageSum: ArenaRef; outAgeSum: ArenaRef; tooOld: ArenaRef } | null;
   out: { inflow: ArenaRef | null; outflow: ArenaRef; stock: ArenaRef; stockChange: ArenaRef };
 }
 
@@ -186,7 +186,7 @@ function arenaBytes(t: CohortTask, n: number): number {
   const per = t.kind === "composition" ? t.M ?? 1 : 1;
   const copied = (a: Float64Array | undefined | null, width: number) => (a && !inArena(a) ? width : 0);
   const i = t.initial;
-  return 8 * n * (copied(t.values, t.T) + 4 * per * t.T + copied(t.content, per * t.T) + (i ? copied(i.stock, t.T) + copied(i.ageSum, t.T) + copied(i.outAgeSum, t.T) : 0));
+  return 8 * n * (copied(t.values, t.T) + 4 * per * t.T + copied(t.content, per * t.T) + (i ? copied(i.stock, t.T) + copied(i.outflow, t.T) + copied(i.ageSum, t.T) + copied(i.outAgeSum, t.T) : 0));
 }
 
 /** Series s0..s1 of a task, as a task of its own (views, no copies). */
@@ -196,7 +196,7 @@ function sliceTask(t: CohortTask, s0: number, s1: number): CohortTask {
   const i = t.initial;
   return {
     ...t, n: s1 - s0, values: rows(t.values, t.T), content: t.content ? rows(t.content, per * t.T) : undefined,
-    initial: i ? { stock0: rows(i.stock0, 1), stock: rows(i.stock, t.T), ageSum: rows(i.ageSum, t.T), outAgeSum: rows(i.outAgeSum, t.T), tooOld: rows(i.tooOld, 1) } : i,
+    initial: i ? { stock0: rows(i.stock0, 1), stock: rows(i.stock, t.T), outflow: rows(i.outflow, t.T), ageSum: rows(i.ageSum, t.T), outAgeSum: rows(i.outAgeSum, t.T), tooOld: rows(i.tooOld, 1) } : i,
   };
 }
 
@@ -273,7 +273,7 @@ async function runInArena(tasks: CohortTask[], pool: CohortPool): Promise<ModelR
       const values = t.kind === "inflow" ? arena.copyIn(t.values) : input(t.values);
       const content = t.content ? input(t.content) : null;
       const init = t.initial
-        ? { stock0: input(t.initial.stock0), stock: input(t.initial.stock), ageSum: input(t.initial.ageSum), outAgeSum: input(t.initial.outAgeSum), tooOld: input(t.initial.tooOld) }
+        ? { stock0: input(t.initial.stock0), stock: input(t.initial.stock), outflow: input(t.initial.outflow), ageSum: input(t.initial.ageSum), outAgeSum: input(t.initial.outAgeSum), tooOld: input(t.initial.tooOld) }
         : null;
       const r: ModelResult = {
         inflow: t.kind === "inflow" ? values : arena.alloc(rows * T),
@@ -295,7 +295,7 @@ async function runInArena(tasks: CohortTask[], pool: CohortPool): Promise<ModelR
           kind: t.kind, T, n, rate: t.rate, indicators: t.indicators, clamp: t.clamp, M: t.M,
           S: ref(mats.S), P: ref(mats.P), panels: ref(mats.panels), St: mats.St ? ref(mats.St) : null,
           values: part(values, T), content: content ? part(content, per * T) : null,
-          initial: init ? { stock0: part(init.stock0, 1), stock: part(init.stock, T), ageSum: part(init.ageSum, T), outAgeSum: part(init.outAgeSum, T), tooOld: part(init.tooOld, 1) } : null,
+          initial: init ? { stock0: part(init.stock0, 1), stock: part(init.stock, T), outflow: part(init.outflow, T), ageSum: part(init.ageSum, T), outAgeSum: part(init.outAgeSum, T), tooOld: part(init.tooOld, 1) } : null,
           out: { inflow: t.kind === "inflow" ? null : part(r.inflow, per * T), outflow: part(r.outflow, per * T), stock: part(r.stock, per * T), stockChange: part(r.stockChange, per * T) },
         };
         jobs.push(pool.run(msg).then((back) => {

@@ -16,7 +16,7 @@ parentPort!.on("message", (t: ArenaTask) => {
     if (t.out.inflow) out.inflow = view(t.out.inflow);
     const values = view(t.values);
     const i = t.initial;
-    const initial = i ? { stock0: view(i.stock0), stock: view(i.stock), ageSum: view(i.ageSum), outAgeSum: view(i.outAgeSum), tooOld: view(i.tooOld) } : null;
+    const initial = i ? { stock0: view(i.stock0), stock: view(i.stock), outflow: view(i.outflow), ageSum: view(i.ageSum), outAgeSum: view(i.outAgeSum), tooOld: view(i.tooOld) } : null;
     let r: ModelResult;
     if (t.kind === "inflow") r = inflowDriven(g, values, t.n, { indicators: t.indicators, initial, out });
     else if (t.kind === "stock") r = stockDriven(g, values, t.n, { indicators: t.indicators, initial, clamp: t.clamp, out });

@@ -25,36 +25,41 @@ export function keyMap(cols: readonly string[], alias = ""): string {
   return `MAP([${cols.map((c) => lit(c)).join(", ")}], [${cols.map((c) => `CAST(${p}${ident(c)} AS VARCHAR)`).join(", ")}])`;
 }
 
-let sumScale = 1e6;
-
 /**
- * Sets the resolution of exact sums from the pipeline's base unit: 1 g whatever the unit
- * (scale = grams per base unit), so one value may reach 9.2 × 10^12 t.
+ * Sums whose result does not depend on thread scheduling: every value is rounded to the
+ * resolution (1 g whatever the base unit) as a 64-bit integer, the integers are summed exactly
+ * (128-bit), and the total is returned as DOUBLE. As fast as a floating sum in DuckDB, and
+ * byte-identical on re-run. One per run (its resolution follows the pipeline's base unit).
  */
-export function setExactSumUnit(gramsPerBaseUnit: number): void {
-  sumScale = gramsPerBaseUnit >= 1 ? Math.round(gramsPerBaseUnit) : gramsPerBaseUnit;
-}
+export class Exact {
+  /** Resolution units (grams) per base unit. */
+  readonly scale: number;
 
-/**
- * Sum whose result does not depend on thread scheduling: every value is rounded to the
- * resolution (1 g) as a 64-bit integer, the integers are summed exactly (128-bit), and the
- * total is returned as DOUBLE. As fast as a floating sum in DuckDB, and byte-identical on re-run.
- */
-export function exactSum(expr: string): string {
-  return exactTotal(exactUnits(expr));
-}
+  constructor(gramsPerBaseUnit: number) {
+    this.scale = gramsPerBaseUnit >= 1 ? Math.round(gramsPerBaseUnit) : gramsPerBaseUnit;
+  }
 
-/** The value in whole resolution units (1 g), as BIGINT: the term that exactSum adds up. */
-export function exactUnits(expr: string): string {
-  return `CAST(round((${expr}) * ${sumScale}) AS BIGINT)`;
-}
+  /** The largest single value that can be summed exactly, in the base unit (2^63 units). */
+  get maxValue(): number {
+    return 9.2e18 / this.scale;
+  }
 
-/** exactSum of terms already in resolution units (from exactUnits), e.g. computed once per row and summed under several conditions. */
-export function exactTotal(unitsExpr: string): string {
-  return fromUnits(`sum(${unitsExpr})`);
-}
+  sum(expr: string): string {
+    return this.total(this.units(expr));
+  }
 
-/** A whole number of resolution units (an exact sum, HUGEINT) back in the base unit, as DOUBLE: what exactTotal returns. */
-export function fromUnits(units: string): string {
-  return `(CAST(${units} AS DOUBLE) / ${sumScale})`;
+  /** The value in whole resolution units (1 g), as BIGINT: the term that `sum` adds up. */
+  units(expr: string): string {
+    return `CAST(round((${expr}) * ${this.scale}) AS BIGINT)`;
+  }
+
+  /** The sum of terms already in resolution units (from `units`), e.g. computed once per row and summed under several conditions. */
+  total(unitsExpr: string): string {
+    return this.fromUnits(`sum(${unitsExpr})`);
+  }
+
+  /** A whole number of resolution units (an exact sum, HUGEINT) back in the base unit, as DOUBLE. */
+  fromUnits(units: string): string {
+    return `(CAST(${units} AS DOUBLE) / ${this.scale})`;
+  }
 }

@@ -1,20 +1,25 @@
-/** Runs a loaded pipeline: sources, steps in order, audits after each, then publishing. */
+/**
+ * Runs a loaded pipeline: the plan (the same checks as `cairn check`), the sources, the checks
+ * of the small tables, the steps in order with their audits, then publishing into the run
+ * directory. The runner knows no step kind: each declares its outputs in the plan.
+ */
 import { writeFileSync } from "node:fs";
 import path from "node:path";
 import { createRequire } from "node:module";
-import { AuditFailure, CairnError, DataError, PipelineError, exitCodeOf } from "../errors.js";
+import { AuditFailure, CairnError, DataError, exitCodeOf } from "../errors.js";
 import { Session, type SessionOptions } from "../engine/session.js";
+import { Exact, ident, lit } from "../engine/sql.js";
 import { AuditLog, AUDIT_TABLE, type AuditSummary } from "../audit/log.js";
 import { initRejects, loadSource, REJECTS_TABLE, type InputFile, type SourceResult } from "../sources/load.js";
-import { stepKind } from "../steps/registry.js";
-import type { StepContext, TableInfo } from "../steps/types.js";
+import type { RunSettings, StepContext, TableInfo } from "../steps/types.js";
 import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
 import { RunDir } from "../publish/rundir.js";
 import { Progress } from "./progress.js";
-import { setExactSumUnit } from "../engine/sql.js";
 import { massFactor } from "../units.js";
 import { METHOD_NOTE, CAUTION } from "./method.js";
+import { buildPlan, type Plan, type StepNode } from "../plan/build.js";
+import { CarryStore } from "../steps/cohort-model/carry.js";
 
 const require = createRequire(import.meta.url);
 export const TOOL_VERSION: string = (require("../../package.json") as { version: string }).version;
@@ -25,7 +30,10 @@ export interface RunOptions extends SessionOptions {
   progress?: Progress;
   /** Base folder for runs without --out (default: the current directory). */
   cwd?: string;
+  settings?: Partial<RunSettings>;
 }
+
+export type SourceReport = Omit<SourceResult, "files">;
 
 export interface RunReport {
   status: "ok" | "failed";
@@ -33,10 +41,10 @@ export interface RunReport {
   error?: string;
   run_dir: string;
   outputs: OutputFile[];
-  sources: Omit<SourceResult, "files">[];
+  sources: SourceReport[];
   rejects: number;
   audit: AuditSummary | null;
-  timings: Record<string, number>;
+  timings_s: Record<string, number>;
 }
 
 function utcStamp(d: Date): string {
@@ -47,24 +55,45 @@ export function defaultRunDir(lp: LoadedPipeline, cwd = process.cwd(), now = new
   return path.join(cwd, "runs", lp.pipeline.name, utcStamp(now));
 }
 
+export function defaultSettings(): RunSettings {
+  return { poolMinCells: Number(process.env.CAIRN_POOL_MIN_CELLS ?? 2e8) };
+}
+
+/** Steps that a later step continues (they keep their end state in memory). */
+function continuedSteps(plan: Plan): Set<string> {
+  const out = new Set<string>();
+  for (const n of plan.steps) {
+    const c = (n.step as { continues?: { step: string } }).continues;
+    if (c) out.add(c.step);
+  }
+  return out;
+}
+
+/** Internal table names never reach users: DuckDB's messages name them, so they are replaced. */
+export function cleanMessage(m: string): string {
+  return m.replace(/"?__[A-Za-z0-9_]+"?/g, "an internal table");
+}
+
 export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Promise<RunReport> {
   const progress = opts.progress ?? new Progress(false);
   const started = new Date();
+  // The plan first: a file that is not a valid pipeline stops here (exit 2), before anything is written.
+  const plan = await buildPlan(lp);
   const out = opts.out ?? defaultRunDir(lp, opts.cwd, started);
   const rd = new RunDir(out);
   for (const m of rd.cleanStale()) progress.info(m);
   if (rd.exists() && !opts.replace) {
-    throw new PipelineError(`${out} already exists; pass --replace to swap it for the new run, or choose another --out`);
+    throw new CairnError(`${out} already exists; pass --replace to swap it for the new run, or choose another --out`, 2);
   }
   rd.create();
-  setExactSumUnit(massFactor(lp.pipeline.base_unit, "g"));
   const s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
-  const audits = new AuditLog(s);
+  const audits = new AuditLog(s, lp.pipeline.base_unit);
   const timings: Record<string, number> = {};
   const tables = new Map<string, TableInfo>();
   const sources: SourceResult[] = [];
   const inputs: InputFile[] = [];
-  let outputs: OutputFile[] = [];
+  const streamed = new Map<string, OutputFile[]>();
+  let outputs: (OutputFile & { step?: string; role?: string })[] = [];
   const t = async <T>(label: string, f: () => Promise<T>): Promise<T> => {
     const t0 = performance.now();
     try {
@@ -76,6 +105,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
   const ctx: StepContext = {
     session: s,
     pipeline: lp.pipeline,
+    exact: new Exact(massFactor(lp.pipeline.base_unit, "g")),
     dir: lp.dir,
     outputDir: rd.staging,
     audits,
@@ -83,12 +113,17 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     tables,
     requireTable(name, option) {
       const info = tables.get(name);
-      if (!info) throw new PipelineError(`option ${option}: no table ${JSON.stringify(name)}; known: ${[...tables.keys()].join(", ")}`);
+      if (!info) throw new Error(`option ${option}: no table ${JSON.stringify(name)} (the plan should have refused this)`);
       return info;
     },
     async columnsOf(name) {
       return (await s.columns(name)).map((c) => c.name);
     },
+    streamed(name, files) {
+      streamed.set(name, files);
+    },
+    carry: new CarryStore(continuedSteps(plan)),
+    settings: { ...defaultSettings(), ...opts.settings },
   };
 
   const finish = async (status: "ok" | "failed", err?: unknown): Promise<RunReport> => {
@@ -98,18 +133,22 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     const summary = await audits.summary();
     const rejects = Number(await s.scalar(`SELECT count(*) FROM ${REJECTS_TABLE}`));
     const code = status === "ok" ? 0 : exitCodeOf(err);
+    const message = err ? cleanMessage(String((err as Error).message)) : undefined;
+    const srcReports = sources.map(({ files: _f, ...r }) => r);
     const manifest = {
       tool: { name: "cairn", version: TOOL_VERSION },
       engine: { duckdb: await s.version(), node: process.version },
       status,
-      ...(err ? { error: String((err as Error).message) } : {}),
+      exit_code: code,
+      ...(message ? { error: message } : {}),
       started_at: started.toISOString(),
       finished_at: new Date().toISOString(),
       pipeline: { name: lp.pipeline.name, file: lp.file, sha256: lp.sha256, variables: lp.variables, base_unit: lp.pipeline.base_unit },
       method: METHOD_NOTE,
       caution: CAUTION,
+      steps: plan.steps.map((n) => ({ id: n.id, kind: n.kind.kind, reads: n.reads.map((r) => r.table), outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })) })),
       inputs,
-      sources: sources.map(({ files: _f, ...r }) => r),
+      sources: srcReports,
       outputs,
       timings_s: timings,
       rejects,
@@ -120,70 +159,44 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     let dir = path.resolve(out);
     if (status === "ok") rd.commit(Boolean(opts.replace));
     else dir = rd.fail();
-    return {
-      status, exit_code: code, ...(err ? { error: String((err as Error).message) } : {}), run_dir: dir, outputs,
-      sources: sources.map(({ files: _f, ...r }) => r), rejects, audit: summary, timings,
-    };
+    return { status, exit_code: code, ...(message ? { error: message } : {}), run_dir: dir, outputs, sources: srcReports, rejects, audit: summary, timings_s: timings };
   };
 
   try {
     await audits.init();
     await initRejects(s);
-    for (const [name, src] of Object.entries(lp.pipeline.sources)) {
-      progress.info(`source ${name}: loading ${src.path}`);
-      let r: SourceResult;
-      try {
-        r = await t(`source:${name}`, () => loadSource(s, lp.pipeline, name, src, lp.dir, (m) => progress.info(m)));
-      } catch (e) {
-        const partial = (e as { source?: SourceResult }).source;
-        if (partial) {
-          sources.push(partial);
-          inputs.push(...partial.files);
-        }
-        throw e;
-      }
-      sources.push(r);
-      inputs.push(...r.files);
-      const keys = [...r.keys.filter((k) => k !== "year"), ...(r.keys.includes("year") ? ["year"] : [])];
-      tables.set(name, { name, keys, publish: false });
-      progress.info(`source ${name}: ${r.rowsLoaded} rows loaded, ${r.rowsRejected} rejected, ${r.rowsFiltered} filtered out`);
-      if (r.rowsRejected > 0) {
-        await audits.note(name, "rejected-rows", "warning", "fail", `${r.rowsRejected} of ${r.rowsRead} rows of source ${name} rejected (see rejects.parquet)`, r.rowsRejected, 0);
-      }
-    }
-    for (const [i, step] of lp.pipeline.steps.entries()) {
-      const kind = stepKind(step.kind)!;
-      audits.setStepIndex(i + 1);
-      progress.info(`step ${step.id} (${step.kind}): running`);
-      const produced = await t(`step:${step.id}`, () => kind.run(ctx, step as never));
-      const pub = step.publish === undefined || step.publish === true ? {} : step.publish === false ? false : step.publish;
-      for (const [j, p] of produced.entries()) {
-        tables.set(p.name, { ...p, step: step.id, publish: pub === false ? false : j === 0 ? pub : {} });
-      }
+    await loadSources(ctx, lp, plan, sources, inputs, t);
+    // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
+    for (const node of plan.steps) await node.kind.check?.(ctx, node.step as never);
+    for (const node of plan.steps) {
+      await runStep(ctx, node, t, streamed);
       if (audits.failedErrors.length > 0) {
         const f = audits.failedErrors;
         throw new AuditFailure(
-          `step ${step.id}: ${f.length} audit check(s) of severity error failed:\n` +
+          `step ${node.id}: ${f.length} audit check(s) of severity error failed:\n` +
             f.map((x) => `  ${x.step} ${x.check}: ${x.failed} item(s) failed, e.g. ${x.example}`).join("\n"),
         );
       }
-      progress.info(`step ${step.id}: done in ${timings[`step:${step.id}`]} s`);
+      progress.info(`step ${node.id}: done in ${timings[`step:${node.id}`]} s`);
     }
     await t("publish", async () => {
       for (const info of tables.values()) {
+        if (!info.step) continue;
+        const role = plan.steps.find((n) => n.id === info.step)!.outputs.find((o) => o.name === info.name)!.role;
+        if (info.publish === false) continue;
         if (info.files) {
-          outputs.push(...info.files);
+          outputs.push(...info.files.map((f) => ({ ...f, step: info.step, role })));
           continue;
         }
-        if (info.publish === false) continue;
         progress.info(`publishing ${info.name}`);
-        outputs.push(...(await writeParquet(s, { table: info.name, keys: info.keys, dir: rd.staging, name: info.name, partitionBy: info.publish.partition_by })));
+        const written = await writeParquet(s, { table: info.name, keys: info.keys, dir: rd.staging, name: info.name, partitionBy: info.publish.partition_by });
+        outputs.push(...written.map((f) => ({ ...f, step: info.step, role })));
       }
     });
     return await finish("ok");
   } catch (e) {
     if (!(e instanceof CairnError) && /out of range|Conversion Error/i.test(String((e as Error).message)) && /INT64|BIGINT|round/i.test(String((e as Error).message))) {
-      e = new DataError(`a quantity too large to sum exactly (one value above 9.2 × 10^12 t; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
+      e = new DataError(`a quantity too large to sum exactly (one value above ${ctx.exact.maxValue.toExponential(1)} ${lp.pipeline.base_unit}; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
     }
     if (e instanceof DataError || e instanceof AuditFailure) {
       try {
@@ -200,7 +213,60 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
       /* already closed */
     }
     rd.discard();
-    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${e.message}`;
+    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${cleanMessage(e.message)}`;
     throw e;
+  }
+}
+
+async function loadSources(ctx: StepContext, lp: LoadedPipeline, plan: Plan, sources: SourceResult[], inputs: InputFile[],
+  t: <T>(label: string, f: () => Promise<T>) => Promise<T>): Promise<void> {
+  for (const node of plan.sources) {
+    const { name, source: src } = node;
+    ctx.progress.info(`source ${name}: loading ${src.path}`);
+    let r: SourceResult;
+    try {
+      r = await t(`source:${name}`, () => loadSource(ctx.session, lp.pipeline, name, src, lp.dir, { log: (m) => ctx.progress.info(m), located: node.config }));
+    } catch (e) {
+      const partial = (e as { source?: SourceResult }).source;
+      if (partial) {
+        sources.push(partial);
+        inputs.push(...partial.files);
+      }
+      throw e;
+    }
+    sources.push(r);
+    inputs.push(...r.files);
+    ctx.tables.set(name, { name, keys: node.schema.keys, publish: false });
+    ctx.progress.info(`source ${name}: ${r.rows_loaded} rows loaded, ${r.rows_rejected} rejected, ${r.rows_filtered} filtered out`);
+    await ctx.audits.note(name, "rejected-rows", "warning", r.rows_rejected > 0 ? "fail" : "pass",
+      r.rows_rejected > 0 ? `${r.rows_rejected} of ${r.rows_read} rows of source ${name} rejected (see rejects.parquet)` : `${r.rows_read} rows read, none rejected`,
+      { items: r.rows_read, failed: r.rows_rejected });
+  }
+}
+
+async function runStep(ctx: StepContext, node: StepNode, t: <T>(label: string, f: () => Promise<T>) => Promise<T>, streamed: Map<string, OutputFile[]>): Promise<void> {
+  const s = ctx.session;
+  ctx.audits.setStepIndex(node.index + 1);
+  ctx.progress.info(`step ${node.id} (${node.kind.kind}): running`);
+  const step = node.step;
+  // Small tables produced by earlier steps are checked now that they exist.
+  await t(`step:${node.id}`, async () => {
+    if (node.reads.some((r) => r.config && ctx.tables.get(r.table)?.step !== undefined)) await node.kind.check?.(ctx, step as never);
+    await node.kind.run(ctx, step as never);
+  });
+  const pub = step.publish === undefined || step.publish === true ? {} : step.publish === false ? false : step.publish;
+  for (const o of node.outputs) {
+    const files = streamed.get(o.name);
+    if (o.streamed) {
+      if (!files) throw new Error(`step ${node.id} did not write its declared output ${o.name}`);
+      // Later steps read the streamed files as a view.
+      await s.run(`CREATE OR REPLACE VIEW ${ident(o.name)} AS SELECT * FROM read_parquet([${files.map((f) => lit(path.join(ctx.outputDir, f.file))).join(", ")}])`);
+    }
+    const got = await s.columns(o.name).catch(() => null);
+    if (!got) throw new Error(`step ${node.id} did not produce its declared table ${o.name}`);
+    const want = o.columns.map((c) => `${c.name} ${c.type}`).join(", ");
+    const have = got.map((c) => `${c.name} ${c.type}`).join(", ");
+    if (want !== have) throw new Error(`step ${node.id}: table ${o.name} has columns (${have}); the plan declared (${want})`);
+    ctx.tables.set(o.name, { name: o.name, keys: o.keys, step: node.id, publish: pub === false ? false : o.role === "main" ? pub : {}, ...(files ? { files } : {}) });
   }
 }

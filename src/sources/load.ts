@@ -25,10 +25,10 @@ export interface InputFile {
 export interface SourceResult {
   name: string;
   keys: string[];
-  rowsRead: number;
-  rowsRejected: number;
-  rowsFiltered: number;
-  rowsLoaded: number;
+  rows_read: number;
+  rows_rejected: number;
+  rows_filtered: number;
+  rows_loaded: number;
   files: InputFile[];
 }
 
@@ -212,8 +212,21 @@ function pct(n: number, d: number): string {
 }
 
 /** Loads one source as a table (view) of its name; rejected rows into the rejects table. */
+export interface LoadOptions {
+  log?: (m: string) => void;
+  /**
+   * Keep each row's file and line (CSV) or row (Parquet) in a view `__located_<name>`, for
+   * messages about the small tables that configure steps ("file:line").
+   */
+  located?: boolean;
+}
+
+/** The view that holds a located source's rows with `__file` and `__line`. */
+export const locatedView = (name: string) => `__located_${name}`;
+
 export async function loadSource(s: Session, pipeline: Pipeline, name: string, src: SourceT, dir: string,
-  log: (m: string) => void = () => {}): Promise<SourceResult> {
+  opts: LoadOptions = {}): Promise<SourceResult> {
+  const log = opts.log ?? (() => {});
   const { files, format } = await sourceFiles(s, name, src, dir);
   await checkColumns(s, name, src, files, format);
   const hashes = await hashFiles(files);
@@ -326,14 +339,14 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
 
   log(`source ${name}: reading ${files.length} file(s)`);
   try {
-    await buildChecked(false);
+    await buildChecked(Boolean(opts.located) && format === "csv");
   } catch (e) {
     throw new DataError(`source ${name}: cannot read ${files.length === 1 ? files[0] : src.path}: ${firstLine(e)}`);
   }
   // A clean Parquet source is a view already checked: no rejects to count again.
   if (cleanSelect) await s.run(`CREATE OR REPLACE VIEW ${ident(checkedView)} AS ${cleanSelect}`);
   let bad = checkedT === checkedView ? 0 : Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NOT NULL`));
-  if (bad > 0 && format === "csv") {
+  if (bad > 0 && format === "csv" && !(opts.located)) {
     // Locate rejected rows: a second, ordered read gives each row its number within its file.
     await buildChecked(true);
     bad = Number(await s.scalar(`SELECT count(*) FROM ${ident(checkedT)} WHERE __reason IS NOT NULL`));
@@ -362,7 +375,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     ? new Map<string, number>((await s.all(`SELECT sc.file_path AS f, count(DISTINCT e.line) AS n FROM ${ident(csvRejT)} e JOIN ${ident(csvScanT)} sc USING (scan_id, file_id) GROUP BY 1`)).map((r) => [String(r.f), Number(r.n)]))
     : new Map<string, number>();
   const okRows = [...perFile.values()].reduce((a, b) => a + b, 0) - bad;
-  const rowsRead = okRows + rejected;
+  const rows_read = okRows + rejected;
 
   // The table: a view over the checked rows (no copy), in file order.
   const outCols = [...cols.map((c) => c.name), ...(hasQty && !hasUnitCol ? ["unit"] : [])];
@@ -372,6 +385,11 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   } catch (e) {
     throw new PipelineError(`sources.${name}.filter: ${JSON.stringify(src.filter)} is not a valid condition: ${firstLine(e)}`);
   }
+  if (opts.located) {
+    const line = format === "csv" ? `__row + ${header ? 1 : 0}` : "__row";
+    await s.run(`CREATE OR REPLACE VIEW ${ident(locatedView(name))} AS SELECT ${idents(outCols)}, __file, ${line} AS __line, ${lit(format === "csv" ? "line" : "row")} AS __line_kind
+      FROM ${ident(checkedT)} WHERE ${cleanSelect ? "TRUE" : "__reason IS NULL"} ${filter}`);
+  }
   const loaded = src.filter ? Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`)) : okRows;
   await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
   const limits = { ...(pipeline.rejects ?? {}), ...(src.rejects ?? {}) };
@@ -380,19 +398,24 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const result: SourceResult = {
     name,
     keys: keyCols,
-    rowsRead,
-    rowsRejected: rejected,
-    rowsFiltered: okRows - loaded,
-    rowsLoaded: loaded,
+    rows_read,
+    rows_rejected: rejected,
+    rows_filtered: okRows - loaded,
+    rows_loaded: loaded,
     files: files.map((f) => ({ source: name, path: f, bytes: hashes.get(f)!.bytes, sha256: hashes.get(f)!.sha256, rows: (perFile.get(f) ?? 0) + (csvPerFile.get(f) ?? 0) })),
   };
-  if (rejected > maxRows || (rowsRead > 0 && rejected / rowsRead > maxShare)) {
+  if (rejected > maxRows || (rows_read > 0 && rejected / rows_read > maxShare)) {
     const ex = await s.all(`SELECT file, "row", line, "column", value, reason FROM ${REJECTS_TABLE} WHERE source = ${lit(name)} ORDER BY file, "row" LIMIT 5`);
     const lines = ex.map((r) => `  ${r.file}:${r.line != null ? `line ${r.line}` : `row ${r.row}`}: column ${r.column || "?"}, value ${JSON.stringify(r.value)}: ${r.reason}`);
     const err = new DataError(
-      `source ${name}: ${rejected} of ${rowsRead} rows rejected (${pct(rejected, rowsRead)}), above the limit (max_rows ${maxRows === Infinity ? "none" : maxRows}, max_share ${maxShare}); first rejects:\n${lines.join("\n")}\n` +
+      `source ${name}: ${rejected} of ${rows_read} rows rejected (${pct(rejected, rows_read)}), above the limit (max_rows ${maxRows === Infinity ? "none" : maxRows}, max_share ${maxShare}); first rejects:\n${lines.join("\n")}\n` +
         `  (all rejects are in rejects.parquet; raise sources.${name}.rejects or the pipeline's rejects: to tolerate them)`,
     );
+    (err as DataError & { source?: SourceResult }).source = result;
+    throw err;
+  }
+  if (rows_read === 0 && !src.allow_empty) {
+    const err = new DataError(`source ${name}: ${files.length === 1 ? files[0] : `the ${files.length} files of ${src.path}`} ${files.length === 1 ? "has" : "have"} no data rows (a header at most); give data, or set allow_empty: true on the source if an empty table is expected`);
     (err as DataError & { source?: SourceResult }).source = result;
     throw err;
   }

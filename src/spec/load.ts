@@ -17,9 +17,11 @@ export interface LoadedPipeline {
   sha256: string;
   variables: Record<string, string>;
   pipeline: Pipeline;
+  /** "file:line:col: key.path" of a place in the file (the closest existing node), for messages. */
+  locate(p: readonly PathKey[], key?: string): string;
 }
 
-type PathKey = string | number;
+export type PathKey = string | number;
 
 class Locator {
   constructor(
@@ -202,7 +204,9 @@ export function loadPipeline(file: string, sets: Record<string, string> = {}): L
     throw new PipelineError(`${file}: pipeline file not found`);
   }
   if (size > MAX_PIPELINE_BYTES) throw new PipelineError(`${file}: pipeline file is ${size} bytes; at most ${MAX_PIPELINE_BYTES} are accepted`);
-  const text = readFileSync(abs, "utf8");
+  // The hash is of the bytes on disk (not of decoded text, which differs for invalid UTF-8).
+  const bytes = readFileSync(abs);
+  const text = bytes.toString("utf8");
   const lc = new LineCounter();
   const doc = parseDocument(text, { lineCounter: lc, prettyErrors: false, uniqueKeys: true, strict: true });
   const loc = new Locator(file, doc, lc);
@@ -256,9 +260,26 @@ export function loadPipeline(file: string, sets: Record<string, string> = {}): L
     const known = STEP_KINDS.map((k) => k.kind);
     const ids = new Set<string>();
     rawSteps.forEach((s, i) => {
-      if (!s || typeof s !== "object") return;
+      if (!s || typeof s !== "object" || Array.isArray(s)) {
+        filtered.push(`${loc.at(["steps", i])}: steps[${i}]: a step must be a mapping with id, kind and the kind's options (got ${show(s)})`);
+        return;
+      }
       const kind = (s as Record<string, unknown>).kind;
-      if (typeof kind !== "string") return;
+      if (kind === undefined) {
+        // A misspelt `kind` is an unknown key at its own line, with the closest known key.
+        const allKeys = [...new Set(["id", "kind", "publish", ...STEP_KINDS.flatMap((k) => Object.keys(k.options.shape))])];
+        const unknown = Object.keys(s).filter((k) => !allKeys.includes(k));
+        for (const k of unknown) {
+          const near = closest(k, allKeys);
+          filtered.push(`${loc.at(["steps", i], k)}: steps[${i}].${k}: unknown key ${show(k)}${near ? `; did you mean ${show(near)}?` : ""}`);
+        }
+        filtered.push(`${loc.at(["steps", i])}: steps[${i}].kind: missing; every step needs a kind (known kinds: ${known.join(", ")})`);
+        return;
+      }
+      if (typeof kind !== "string") {
+        filtered.push(`${loc.at(["steps", i, "kind"])}: steps[${i}].kind: expected a step kind name, got ${show(kind)} (known kinds: ${known.join(", ")})`);
+        return;
+      }
       if (!stepKind(kind)) {
         const near = closest(kind, known);
         filtered.push(`${loc.at(["steps", i, "kind"])}: steps[${i}].kind: unknown step kind ${show(kind)}${near ? `; did you mean ${show(near)}?` : ""} (known kinds: ${known.join(", ")})`);
@@ -287,30 +308,15 @@ export function loadPipeline(file: string, sets: Record<string, string> = {}): L
     if (src.unit_column && !(src.unit_column in src.columns))
       filtered.push(`${loc.at(["sources", name, "unit_column"])}: sources.${name}.unit_column: ${show(src.unit_column)} is not among the declared columns (${Object.keys(src.columns).join(", ")})`);
   }
-  // Every table a step reads is a source or an earlier step's output.
-  const known = new Set(Object.keys(pipeline.sources));
-  pipeline.steps.forEach((st, i) => {
-    const kind = stepKind(st.kind)!;
-    for (const t of kind.reads(st as never)) {
-      const extra = [...known].some((k) => t === k);
-      if (!extra) {
-        const key = Object.entries(st).find(([, v]) => v === t || (Array.isArray(v) && v.includes(t)))?.[0];
-        const later = pipeline.steps.slice(i + 1).some((x) => x.id === t);
-        const near = closest(t, [...known]);
-        filtered.push(`${loc.at(["steps", i, ...(key ? [key] : [])])}: steps[${i}]${key ? "." + key : ""}: no table ${show(t)} ${later ? "yet: it is produced by a later step; move this step after it" : `among the sources and earlier steps${near ? `; did you mean ${show(near)}?` : ""} (known: ${[...known].join(", ")})`}`);
-      }
-    }
-    known.add(st.id);
-    for (const suffix of ["_unmapped", "_by_cohort", "_materials", "_lifetimes"]) known.add(st.id + suffix);
-  });
   if (filtered.length > 0) throw new PipelineError(filtered.join("\n"));
 
   return {
     file: abs,
     dir: path.dirname(abs),
-    sha256: createHash("sha256").update(text).digest("hex"),
+    sha256: createHash("sha256").update(bytes).digest("hex"),
     variables: vars,
     pipeline,
+    locate: (p, key) => `${loc.at(p, key)}: ${pathText(key !== undefined ? [...p, key] : p)}`,
   };
 }
 

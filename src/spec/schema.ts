@@ -45,6 +45,7 @@ export const Source = z
     unit_column: Name.optional().describe("a column that gives each row's unit (instead of `unit`)"),
     filter: z.string().optional().describe("DuckDB SQL condition over the typed columns; rows failing it are counted, not rejected"),
     rejects: RejectLimits.optional(),
+    allow_empty: z.boolean().default(false).describe("accept a source with no data rows (default: an error naming the file)"),
   })
   .strict();
 
@@ -58,6 +59,9 @@ export const AuditOptions = z
     asymmetry_severity: Severity.default("warning"),
     negative_severity: Severity.default("warning"),
     unmapped_severity: Severity.default("warning"),
+    unmapped_max_share: z.number().min(0).max(1).default(0.01).describe("largest share of a value's mass (production, imports, …) a concordance may leave unmapped before the unmapped-share audit fails"),
+    unweighed_max_share: z.number().min(0).max(1).default(0.05).describe("largest share of a product's input rows counted in pieces without a unit_mass (mass unknown, left out) before the unweighed-product audit fails"),
+    unmapped_limit_severity: Severity.default("error").describe("severity of the unmapped-share and unweighed-product audits (error stops the run, exit 4)"),
     below_zero_threshold: z.number().min(0).max(1).default(0.05),
     beyond_horizon_threshold: z.number().min(0).max(1).default(0.05),
     lifetime_severity: Severity.default("warning"),
@@ -84,7 +88,7 @@ export const PipelineBase = z
     rejects: RejectLimits.optional().describe("default limits for every source (default: max_rows 0)"),
     audit: AuditOptions.optional(),
     sources: z.record(Name, Source),
-    steps: z.array(z.looseObject({ kind: z.string(), id: z.string() })),
+    steps: z.array(z.unknown()).describe("the steps, run in order"),
   })
   .strict();
 

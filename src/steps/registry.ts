@@ -6,7 +6,8 @@ import { concordanceStep } from "./concordance.js";
 import { apparentConsumptionStep } from "./apparent-consumption.js";
 import { aggregateStep } from "./aggregate.js";
 import { sqlStep } from "./sql.js";
-import { cohortModelStep } from "./cohort-model.js";
+import { cohortModelStep } from "./cohort-model/index.js";
+import { yearlyPathStep } from "./yearly-path.js";
 
 export const STEP_KINDS: readonly StepKind[] = [
   concordanceStep,
@@ -14,6 +15,7 @@ export const STEP_KINDS: readonly StepKind[] = [
   aggregateStep,
   sqlStep,
   cohortModelStep,
+  yearlyPathStep,
 ] as unknown as StepKind[];
 
 export function stepKind(kind: string): StepKind | undefined {

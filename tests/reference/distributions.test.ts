@@ -169,7 +169,7 @@ describe("parameter validation names the parameter", () => {
     [{ distribution: "gamma", mean: 10 }, /distribution gamma takes shape and scale, or mean and sd; missing sd/],
     [{ distribution: "exponential", mean: 10, sd: 2 }, /distribution exponential takes mean; surplus sd/],
     [{ distribution: "lognormal", mean: Number.NaN, sd: 2 }, /parameter mean/],
-    [{ distribution: "weibel", mean: 10, sd: 2 }, /unknown distribution "weibel"; accepted: fixed, normal/],
+    [{ distribution: "weibel", mean: 10, sd: 2 }, /unknown distribution "weibel"; did you mean "weibull"\? \(accepted: fixed, normal/],
     [{ distribution: "fixed", mean: -3 }, /parameter mean: mean must be a finite number ≥ 0/],
   ])("%o", (p, re) => {
     expect(() => makeLifetime(p as never, "series region=ALD, product=cars")).toThrow(re);

@@ -48,7 +48,7 @@ steps:
     });
     const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "o") });
     expect(r.status, r.error).toBe("ok");
-    expect(r.sources[0]).toMatchObject({ name: "production", rowsRead: 3, rowsFiltered: 1, rowsLoaded: 2 });
+    expect(r.sources[0]).toMatchObject({ name: "production", rows_read: 3, rows_filtered: 1, rows_loaded: 2 });
     const ac = await s.all(`SELECT region, year, production, imports, exports, consumption FROM '${dir}/o/ac.parquet' ORDER BY region, year`);
     expect(ac).toEqual([
       { region: "A", year: 2000, production: 10500, imports: 0, exports: 1.5, consumption: 10498.5 },

@@ -74,7 +74,7 @@ describe("bad input data ends in rejects or clear errors", () => {
     expect(String(by(11).reason)).toMatch(/duplicate key/);
     const manifest = JSON.parse(readFileSync(path.join(out + ".failed", "manifest.json"), "utf8"));
     expect(manifest.status).toBe("failed");
-    expect(manifest.sources[0]).toMatchObject({ name: "production", rowsRead: 10, rowsRejected: 9 });
+    expect(manifest.sources[0]).toMatchObject({ name: "production", rows_read: 10, rows_rejected: 9 });
   });
 
   it("rejects under the threshold let the run go on and are published", async () => {
@@ -84,11 +84,12 @@ describe("bad input data ends in rejects or clear errors", () => {
     expect(r!.rejects).toBe(1);
     const s = await Session.open();
     const rows = await s.all(`SELECT * FROM read_parquet('${out}/rejects.parquet')`);
-    const audit = await s.all(`SELECT * FROM read_parquet('${out}/audit.parquet') WHERE "check" = 'rejected-rows'`);
+    const audit = await s.all(`SELECT * FROM read_parquet('${out}/audit.parquet') WHERE "check" = 'rejected-rows' AND step = 'production'`);
     s.close();
     expect(rows).toHaveLength(1);
     expect(rows[0]).toMatchObject({ line: 3, column: "quantity", value: "oops" });
     expect(audit).toHaveLength(1);
+    expect(audit[0]).toMatchObject({ status: "fail", items: 3, failed: 1 });
   });
 
   it("a share threshold", async () => {
@@ -163,7 +164,7 @@ describe("bad input data ends in rejects or clear errors", () => {
   it("unknown commodity codes are reported as unmapped with their mass, never dropped", async () => {
     const dir = tmp();
     write(dir, {
-      "p.yaml": PIPE().replace("steps:", `  conc:\n    path: conc.csv\n    columns: { commodity: text, product: text, material: text, factor: number, share: number }\nsteps:`) + "    concordance: conc\n",
+      "p.yaml": PIPE("audit: { unmapped_max_share: 0.1 }\n").replace("steps:", `  conc:\n    path: conc.csv\n    columns: { commodity: text, product: text, material: text, factor: number, share: number }\nsteps:`) + "    concordance: conc\n",
       "production.csv": "region,commodity,year,quantity\nA,c1,2000,100\nA,zz,2000,7\n",
       "trade.csv": GOOD_TRADE,
       "conc.csv": "commodity,product,material,factor,share\nc1,cars,steel,1,1\n",
@@ -172,7 +173,7 @@ describe("bad input data ends in rejects or clear errors", () => {
     expect(r.status).toBe("ok");
     const s = await Session.open();
     const un = await s.all(`SELECT * FROM read_parquet('${dir}/o/consumption_unmapped.parquet')`);
-    const au = await s.all(`SELECT * FROM read_parquet('${dir}/o/audit.parquet') WHERE "check" = 'unmapped' AND status = 'fail'`);
+    const au = await s.all(`SELECT * FROM read_parquet('${dir}/o/audit.parquet') WHERE "check" = 'unmapped' AND row_kind = 'item'`);
     s.close();
     expect(un).toEqual([{ region: "A", commodity: "zz", year: 2000, production: 7, imports: 0, exports: 0, unit: "t", reason: "commodity not in the concordance" }]);
     expect(au).toHaveLength(1);
@@ -216,6 +217,6 @@ describe("Parquet sources", () => {
     ]);
     const ok = await runPipeline(loadPipeline(path.join(dir, "q.yaml")), { out: path.join(dir, "ok") });
     expect(ok.status).toBe("ok");
-    expect(ok.sources[0]).toMatchObject({ rowsRead: 1, rowsLoaded: 1, rowsRejected: 0 });
+    expect(ok.sources[0]).toMatchObject({ rows_read: 1, rows_loaded: 1, rows_rejected: 0 });
   });
 });

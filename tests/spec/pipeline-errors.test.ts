@@ -3,6 +3,20 @@ import path from "node:path";
 import { loadPipeline } from "../../src/spec/load.js";
 import { PipelineError } from "../../src/errors.js";
 import { BASIC_SOURCES, tmp, write } from "../helpers.js";
+import { buildPlan } from "../../src/plan/build.js";
+
+/** The message of the first error of loading and planning the file (the plan checks what needs the tables' schemas). */
+async function planErrorOf(yaml: string): Promise<string> {
+  const dir = tmp();
+  write(dir, { "p.yaml": yaml });
+  try {
+    await buildPlan(loadPipeline(path.join(dir, "p.yaml")));
+  } catch (e) {
+    expect(e).toBeInstanceOf(PipelineError);
+    return (e as Error).message.replaceAll(dir + path.sep, "");
+  }
+  throw new Error("expected an error");
+}
 
 function errorOf(yaml: string, sets: Record<string, string> = {}): string {
   const dir = tmp();
@@ -68,9 +82,9 @@ describe("broken pipeline files give file:line:col, key, value and what is accep
     expect(m).toContain("p.yaml:24:5: steps[0].trade: missing (expected string)");
   });
 
-  it("9. a step reading a table that does not exist suggests the close name", () => {
-    const m = errorOf(`name: t\n${BASIC_SOURCES}\nsteps:\n  - id: c\n    kind: apparent-consumption\n    production: prodution\n    trade: trade\n`);
-    expect(m).toContain('p.yaml:26:17: steps[0].production: no table "prodution" among the sources and earlier steps; did you mean "production"?');
+  it("9. a step reading a table that does not exist suggests the close name", async () => {
+    const m = await planErrorOf(`name: t\n${BASIC_SOURCES}\nsteps:\n  - id: c\n    kind: apparent-consumption\n    production: prodution\n    trade: trade\n`);
+    expect(m).toContain('p.yaml:26:17: steps[0].production: no table "prodution" among the sources and the tables of earlier steps; did you mean "production"?');
   });
 
   it("10. unknown variable", () => {
@@ -117,8 +131,8 @@ describe("broken pipeline files give file:line:col, key, value and what is accep
     expect(m).toContain('steps[1].id: duplicate step id "consumption"');
   });
 
-  it("18. a step reading a table produced only later says so", () => {
-    const m = errorOf(`name: t\n${BASIC_SOURCES}\nsteps:\n  - id: w\n    kind: aggregate\n    input: consumption\n    groups: production\n${STEP.replace("steps:\n", "")}`);
+  it("18. a step reading a table produced only later says so", async () => {
+    const m = await planErrorOf(`name: t\n${BASIC_SOURCES}\nsteps:\n  - id: w\n    kind: aggregate\n    input: consumption\n    groups: production\n${STEP.replace("steps:\n", "")}`);
     expect(m).toContain('steps[0].input: no table "consumption" yet: it is produced by a later step');
   });
 

@@ -32,7 +32,7 @@ describe("apparent consumption = production + imports − exports (definition; c
       { region: "A", commodity: "c1", year: 2001, production: 90, imports: 0, exports: 10, consumption: 80, unit: "t", mirrored: false, negative: false },
       { region: "B", commodity: "c1", year: 2000, production: 20, imports: 30, exports: 60, consumption: -10, unit: "t", mirrored: false, negative: true },
     ]);
-    const neg = await q(`SELECT keys, year, observed, status FROM '$OUT/audit.parquet' WHERE "check" = 'negative-consumption' AND status = 'fail'`);
+    const neg = await q(`SELECT keys, year, observed, status FROM '$OUT/audit.parquet' WHERE "check" = 'negative-consumption' AND row_kind = 'item'`);
     expect(neg).toHaveLength(1);
     expect(neg[0]!.observed).toBe(-10);
     const id = await q(`SELECT * FROM '$OUT/audit.parquet' WHERE "check" = 'identity'`);
@@ -47,7 +47,7 @@ describe("apparent consumption = production + imports − exports (definition; c
     }, `  - id: ac\n    kind: apparent-consumption\n    production: production\n    trade: trade\n    negative: zero\n`);
     const rows = await q(`SELECT consumption FROM '$OUT/ac.parquet'`);
     expect(rows[0]!.consumption).toBe(0);
-    const neg = await q(`SELECT observed, message FROM '$OUT/audit.parquet' WHERE "check" = 'negative-consumption' AND status = 'fail'`);
+    const neg = await q(`SELECT observed, message FROM '$OUT/audit.parquet' WHERE "check" = 'negative-consumption' AND row_kind = 'item'`);
     expect(neg[0]!.observed).toBe(-40);
     expect(String(neg[0]!.message)).toContain("set to 0");
     close();
@@ -66,7 +66,7 @@ describe("apparent consumption = production + imports − exports (definition; c
       { region: "C", year: 2001, production: 10, imports: 0, exports: 1, consumption: 9, mirrored: false },
     ]);
     const note = await q(`SELECT message FROM '$OUT/audit.parquet' WHERE "check" = 'mirror-fill'`);
-    expect(String(note[0]!.message)).toMatch(/^2 reporter-years .* \(3 mirrored rows/);
+    expect(String(note[0]!.message)).toMatch(/^2 of 6 reporter-years had no trade reports and were filled .* \(3 mirrored rows/);
     close();
   });
 
@@ -85,7 +85,7 @@ describe("apparent consumption = production + imports − exports (definition; c
       "production.csv": "region,commodity,year,quantity\nA,c1,2000,10\n",
       "trade.csv": "reporter,partner,commodity,flow,year,quantity\nA,B,c1,import,2000,100\nB,A,c1,export,2000,60\nA,C,c1,import,2000,100\nC,A,c1,export,2000,90\n",
     }, `  - id: ac\n    kind: apparent-consumption\n    production: production\n    trade: trade\n`);
-    const a = await q(`SELECT severity, message FROM '$OUT/audit.parquet' WHERE "check" = 'trade-asymmetry' AND status = 'fail'`);
+    const a = await q(`SELECT severity, message FROM '$OUT/audit.parquet' WHERE "check" = 'trade-asymmetry' AND row_kind = 'item'`);
     expect(a).toHaveLength(1);
     expect(a[0]!.severity).toBe("warning");
     expect(String(a[0]!.message)).toContain("imports reported by A from B (100.0) differ from the exports reported by B (60.0) by more than 25 %");
@@ -114,7 +114,7 @@ describe("apparent consumption = production + imports − exports (definition; c
     close();
   }, 60_000);
 
-  it("shares that do not sum to 1 fail the run with exit 4 (audit error)", async () => {
+  it("shares that do not sum to 1 stop the run before any step (exit 3), naming the commodity", async () => {
     const dir = tmp();
     write(dir, {
       "p.yaml": `name: t\n${BASIC_SOURCES}  conc:\n    path: conc.csv\n    columns: { commodity: text, product: text, material: text, factor: number, share: number }\nsteps:\n  - id: ac\n    kind: apparent-consumption\n    production: production\n    trade: trade\n    concordance: conc\n`,
@@ -124,9 +124,9 @@ describe("apparent consumption = production + imports − exports (definition; c
     });
     const r = await runPipeline(loadPipeline(path.join(dir, "p.yaml")), { out: path.join(dir, "o") });
     expect(r.status).toBe("failed");
-    expect(r.exit_code).toBe(4);
-    expect(r.error).toContain("concordance-shares");
-    expect(r.error).toContain("shares of commodity c1 sum to 0.9");
+    expect(r.exit_code).toBe(3);
+    expect(r.error).toContain("every commodity's shares must sum to 1");
+    expect(r.error).toMatch(/commodity c1: shares sum to 0\.9/);
   });
 });
 
@@ -137,7 +137,7 @@ describe("concordance step: mass in = mass out + unmapped", () => {
       "production.csv": "region,commodity,year,quantity\nA,c1,2000,10\nA,c2,2000,5\nA,c9,2000,3\n",
       "trade.csv": "reporter,partner,commodity,flow,year,quantity\nA,B,c1,import,2000,1\n",
       "conc.csv": "commodity,product,material,factor,share\nc1,p,steel,1,0.25\nc1,p,copper,1,0.75\nc2,q,steel,2,1\n",
-    }, `  - id: mapped\n    kind: concordance\n    input: production\n    concordance: conc\n`, conc);
+    }, `  - id: mapped\n    kind: concordance\n    input: production\n    concordance: conc\n`, conc, "audit: { unmapped_max_share: 0.2 }\n" + BASIC_SOURCES);
     const rows = await q(`SELECT product, material, quantity FROM '$OUT/mapped.parquet' ORDER BY product, material`);
     expect(rows).toEqual([
       { product: "p", material: "copper", quantity: 7.5 },

@@ -4,7 +4,7 @@ import { loadPipeline } from "../../src/spec/load.js";
 import { runPipeline } from "../../src/run/runner.js";
 import { Session } from "../../src/engine/session.js";
 import { makeLifetime, survivalVector } from "../../src/cohort/index.js";
-import { candidates, pick } from "../../src/steps/cohort-match.js";
+import { candidates, pick } from "../../src/ops/param-match.js";
 import { tmp, write } from "../helpers.js";
 
 const SOURCES = `
@@ -87,7 +87,7 @@ describe("cohort-model step", () => {
     });
     const lifetimes = await q(`SELECT lifetime_row, count(*) AS n, sum(leaving_share) AS p FROM '$OUT/m_lifetimes.parquet' GROUP BY 1 ORDER BY 1`);
     expect(lifetimes.map((x) => x.lifetime_row)).toEqual([1, 2, 3, 4]);
-    const bal = await q(`SELECT status, "check" FROM '$OUT/audit.parquet' WHERE step = 'm' AND severity = 'error' AND status = 'fail'`);
+    const bal = await q(`SELECT status, "check" FROM '$OUT/audit.parquet' WHERE step = 'm' AND severity = 'error' AND row_kind = 'item'`);
     expect(bal).toEqual([]);
     close();
   });
@@ -110,13 +110,14 @@ describe("cohort-model step", () => {
     const lt = "region,product,first_cohort,last_cohort,distribution,mean,sd,shape,scale\n,cars,,,normal,12,0,,\n,houses,,,exponential,30,,,\n";
     const { r } = await runModel({ "inflow.csv": inflowCsv(SERIES, YEARS, () => 1), "lifetimes.csv": lt });
     expect(r.exit_code).toBe(3);
-    expect(r.error).toMatch(/series region=A, product=cars: lifetimes row 1: parameter sd: sd must be a finite number > 0 \(got 0\)/);
+    // Checked before any step runs, with the file and line of the row.
+    expect(r.error).toMatch(/lifetimes table lifetimes has invalid rows:\n  .*lifetimes\.csv, line 2: parameter sd: sd must be a finite number > 0 \(got 0\)/);
   });
 
   it("a surplus parameter is named", async () => {
     const lt = "region,product,first_cohort,last_cohort,distribution,mean,sd,shape,scale\n,cars,,,exponential,12,3,,\n,houses,,,exponential,30,,,\n";
     const { r } = await runModel({ "inflow.csv": inflowCsv(SERIES, YEARS, () => 1), "lifetimes.csv": lt });
-    expect(r.error).toMatch(/lifetimes row 1: distribution exponential takes mean; surplus sd/);
+    expect(r.error).toMatch(/lifetimes\.csv, line 2: distribution exponential takes mean; surplus sd/);
   });
 
   it("stock-driven from a stock path, with negative inflow kept and flagged", async () => {
@@ -126,9 +127,9 @@ describe("cohort-model step", () => {
     const rows = await q(`SELECT * FROM '$OUT/m.parquet' ORDER BY year`);
     for (const row of rows) expect(Math.abs(Number(row.stock) - Number(row.stock_target))).toBeLessThan(1e-9);
     expect(rows.some((x) => x.negative_inflow === true)).toBe(true);
-    const spike = await q(`SELECT * FROM '$OUT/audit.parquet' WHERE "check" = 'first-year-spike' AND status = 'fail'`);
+    const spike = await q(`SELECT * FROM '$OUT/audit.parquet' WHERE "check" = 'first-year-spike' AND row_kind = 'item'`);
     expect(spike).toHaveLength(1);
-    const neg = await q(`SELECT count(*) AS n FROM '$OUT/audit.parquet' WHERE "check" = 'negative-inflow' AND status = 'fail'`);
+    const neg = await q(`SELECT count(*) AS n FROM '$OUT/audit.parquet' WHERE "check" = 'negative-inflow' AND row_kind = 'item'`);
     expect(neg[0]!.n).toBe(rows.filter((x) => Number(x.inflow) < 0).length);
     close();
   });
@@ -142,7 +143,7 @@ describe("cohort-model step", () => {
       "content.csv": "region,product,material,first_cohort,last_cohort,content\n,cars,steel,,2014,0.7\n,cars,steel,2015,,0.6\n,cars,aluminium,,,0.1\n,houses,cement,,,0.8\n",
     }, "    initial_stock: init\n    content: content\n    by_cohort: true\n", extra);
     expect(r.status, r.error).toBe("ok");
-    const fails = await q(`SELECT "check", message FROM '$OUT/audit.parquet' WHERE status = 'fail' AND severity = 'error'`);
+    const fails = await q(`SELECT "check", message FROM '$OUT/audit.parquet' WHERE row_kind = 'item' AND severity = 'error'`);
     expect(fails).toEqual([]);
     const first = await q(`SELECT stock, stock_change, inflow, outflow FROM '$OUT/m.parquet' WHERE region = 'A' AND product = 'cars' AND year = 2000`);
     expect(Number(first[0]!.stock) - Number(first[0]!.stock_change)).toBeCloseTo(35, 9); // initial stock at the end of 1999
@@ -237,7 +238,7 @@ describe("stock-driven with clamp", () => {
     expect(r.status, r.error).toBe("ok");
     const s = await Session.open();
     const rows = await s.all(`SELECT year, inflow, stock, stock_target, unmet_stock_change FROM '${dir}/o/m.parquet' ORDER BY year`);
-    const audit = await s.all(`SELECT year, observed FROM '${dir}/o/audit.parquet' WHERE "check" = 'negative-inflow' AND status = 'fail' ORDER BY year`);
+    const audit = await s.all(`SELECT year, observed FROM '${dir}/o/audit.parquet' WHERE "check" = 'negative-inflow' AND row_kind = 'item' ORDER BY year`);
     s.close();
     // A fixed 30-year lifetime: nothing leaves, so the stock cannot fall; every year from 2005 is clamped.
     expect(rows[0]).toMatchObject({ year: 2000, inflow: 100, stock: 100 });

@@ -2,7 +2,7 @@
  * Trade asymmetry: where both sides report a flow (imports reported by the importer from an
  * exporter, and that exporter's exports to the importer, per commodity and year), the two
  * figures are compared. Items: one per pair of reports, observed = imports, expected = exports,
- * both exact sums of the rows in whole resolution units (engine/sql.ts, exactUnits).
+ * both exact sums of the rows in whole resolution units (engine/sql.ts, Exact.units).
  *
  * Two ways to find the pairs, with the same items:
  * - by sorting (the usual case): every report gets one BIGINT key, numbered from dictionaries
@@ -14,7 +14,7 @@
  *   numbered key could overflow, the pairs are found
  * - by grouping on the text keys, with sums per group (any number of reports per pair).
  */
-import { exactTotal, exactUnits, fromUnits, ident, lit } from "../engine/sql.js";
+import { ident, lit, type Exact } from "../engine/sql.js";
 import type { Session } from "../engine/session.js";
 
 export interface AsymmetryInput {
@@ -23,6 +23,8 @@ export interface AsymmetryInput {
   /** Prefix of the helper tables (dropped by `cleanup`). */
   prefix: string;
   threshold: number;
+  /** Exact sums at the run's resolution. */
+  exact: Exact;
 }
 
 export interface AsymmetryItems {
@@ -43,9 +45,9 @@ const itemsOf = (threshold: number) => `SELECT MAP(['importer', 'exporter', 'com
 export function groupedItems(a: AsymmetryInput): string {
   return `WITH p AS (
       SELECT importer, exporter, commodity, year,
-        ${exactTotal("CASE WHEN flow = 'import' THEN __units END")} AS m, ${exactTotal("CASE WHEN flow = 'export' THEN __units END")} AS x
+        ${a.exact.total("CASE WHEN flow = 'import' THEN __units END")} AS m, ${a.exact.total("CASE WHEN flow = 'export' THEN __units END")} AS x
       FROM (SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
-              CAST(commodity AS VARCHAR) AS commodity, year, flow, ${exactUnits("quantity")} AS __units
+              CAST(commodity AS VARCHAR) AS commodity, year, flow, ${a.exact.units("quantity")} AS __units
             FROM ${ident(a.trade)} WHERE NOT mirrored)
       GROUP BY importer, exporter, commodity, year HAVING bool_or(flow = 'import') AND bool_or(flow = 'export'))
     ${itemsOf(a.threshold)}`;
@@ -86,15 +88,15 @@ export async function asymmetryItems(s: Session, a: AsymmetryInput, grouped = fa
   await s.run(`CREATE OR REPLACE TEMP TABLE ${pairs} AS
     SELECT k // 2 AS k, u AS m_units, pu AS x_units, pk = k AS dup FROM (
       SELECT k, u, lag(k) OVER (ORDER BY k) AS pk, lag(u) OVER (ORDER BY k) AS pu FROM (
-        SELECT 2 * (${key}) + CASE WHEN t.flow = 'import' THEN 1 ELSE 0 END AS k, ${exactUnits("t.quantity")} AS u
+        SELECT 2 * (${key}) + CASE WHEN t.flow = 'import' THEN 1 ELSE 0 END AS k, ${a.exact.units("t.quantity")} AS u
         FROM (SELECT CASE WHEN flow = 'import' THEN reporter ELSE partner END AS importer, CASE WHEN flow = 'import' THEN partner ELSE reporter END AS exporter,
                 CAST(commodity AS VARCHAR) AS commodity, year, flow, quantity FROM ${t} WHERE NOT mirrored) t
         JOIN ${codes} a ON a.code = t.importer JOIN ${codes} b ON b.code = t.exporter JOIN ${coms} c ON c.code = t.commodity))
     WHERE pk = k OR (k % 2 = 1 AND pk = k - 1)`);
   if (Number(await s.scalar(`SELECT count(*) FROM ${pairs} WHERE dup`)) > 0) return byGrouping();
   // Keys back to codes by list position (the dictionaries are small); computed for failing items only.
-  const m = fromUnits("CAST(m_units AS HUGEINT)");
-  const x = fromUnits("CAST(x_units AS HUGEINT)");
+  const m = a.exact.fromUnits("CAST(m_units AS HUGEINT)");
+  const x = a.exact.fromUnits("CAST(x_units AS HUGEINT)");
   const items = `WITH p AS (
       SELECT (SELECT list(code ORDER BY id) FROM ${codes})[k // ${Y * C * R} + 1] AS importer,
         (SELECT list(code ORDER BY id) FROM ${codes})[(k // ${Y * C}) % ${R} + 1] AS exporter,

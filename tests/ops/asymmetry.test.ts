@@ -1,6 +1,7 @@
 import { afterAll, beforeAll, describe, expect, it } from "vitest";
 import { Session } from "../../src/engine/session.js";
-import { asymmetryItems } from "../../src/steps/asymmetry.js";
+import { Exact } from "../../src/engine/sql.js";
+import { asymmetryItems } from "../../src/ops/asymmetry.js";
 
 // The two ways of finding pairs of reports must give the same items. The reference is the
 // grouped way, checked by hand in apparent-consumption.test.ts; here the same items must
@@ -12,7 +13,7 @@ beforeAll(async () => {
 afterAll(() => s.close());
 
 async function items(table: string, grouped = false) {
-  const a = await asymmetryItems(s, { trade: table, prefix: `__t_${table}`, threshold: 0.25 }, grouped);
+  const a = await asymmetryItems(s, { trade: table, prefix: `__t_${table}`, threshold: 0.25, exact: new Exact(1e6) }, grouped);
   const rows = await s.all(`SELECT CAST(keys AS VARCHAR) AS keys, year, observed, expected, tolerance, message FROM (${a.items}) ORDER BY ALL`);
   await a.cleanup();
   return { path: a.path, rows };
