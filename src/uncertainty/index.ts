@@ -4,7 +4,7 @@
  * sensitivity. Each file's header names its method and sources.
  */
 export { Rng, splitMix64, withRandom } from "./random.js";
-export { normQuantile, normCdf, normSf, truncatedNormal } from "./normal.js";
+export { normQuantile, normCdf, normCdfFast, normSf, truncatedNormal } from "./normal.js";
 export {
   type Marginal,
   type MarginalFamily,

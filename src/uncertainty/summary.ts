@@ -9,8 +9,8 @@
  * deterministic but not in plain left-to-right order). The sd uses the n − 1 denominator
  * (the unbiased sample variance), so one draw gives sd NaN.
  * Quantiles: Hyndman & Fan, "Sample quantiles in statistical packages", The American
- * Statistician 50(4), 1996, 361–365, definition 7 (R's default): with the draws sorted,
- * x(1) ≤ … ≤ x(n), h = (n − 1)p (0-based), Q(p) = x(⌊h⌋) + (h − ⌊h⌋)(x(⌊h⌋+1) − x(⌊h⌋)). The
+ * Statistician 50(4), 1996, 361–365, definition 7 (R's default, from memory): with the draws
+ * sorted, x(0) ≤ … ≤ x(n−1), h = (n − 1)p, Q(p) = x(⌊h⌋) + (h − ⌊h⌋)(x(⌊h⌋+1) − x(⌊h⌋)). The
  * needed order statistics are found by bucketing and selection (order-stats.ts), not a full sort.
  * A cell holding any NaN gets NaN for every statistic. The input is never modified.
  *
