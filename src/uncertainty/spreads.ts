@@ -142,6 +142,7 @@ export function parseSpread(input: unknown, where = "spread"): Spread {
       return `${at}: unknown option(s) ${issue.keys.join(", ")} for a ${String(family)} spread; accepted: ${Object.keys(shape ?? {}).join(", ")}`;
     }
     if (issue.code === "invalid_union" || (issue.path.length === 1 && issue.path[0] === "family")) {
+      if (family === undefined) return `${where}: a spread needs a family; accepted: ${SPREAD_FAMILIES.join(", ")}; got ${JSON.stringify(input)}`;
       return `${at}: unknown spread family ${JSON.stringify(family)}; accepted: ${SPREAD_FAMILIES.join(", ")}`;
     }
     if (issue.code === "custom") return `${at}: ${issue.message}`;

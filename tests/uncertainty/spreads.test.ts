@@ -180,6 +180,7 @@ describe("spread validation", () => {
     expect(msg({ family: "normal" })).toMatch(/uncertainty\.inflow: a normal spread takes rel_sd, or sd; got none of them/);
     expect(msg({ family: "normal", rel_sd: 0.1, sd: 2 })).toMatch(/takes rel_sd, or sd; got rel_sd = 0\.1, sd = 2/);
     expect(msg({ family: "normal", sd: -1 })).toMatch(/uncertainty\.inflow\.sd: sd must be ≥ 0; got -1/);
+    expect(msg({ sd: 1 })).toMatch(/uncertainty\.inflow: a spread needs a family; accepted: normal, lognormal, uniform, triangular; got \{"sd":1\}/);
     expect(msg({ family: "gamma", sd: 1 })).toMatch(/unknown spread family "gamma"; accepted: normal, lognormal, uniform, triangular/);
     expect(msg({ family: "uniform", half_width: 1, width: 2 })).toMatch(/unknown option\(s\) width for a uniform spread; accepted: family, rel_half_width, half_width, min, max/);
     expect(msg({ family: "uniform", min: 3, max: 1 })).toMatch(/min must be below max; got min = 3, max = 1/);
