@@ -5,6 +5,8 @@
 import { mkdirSync, writeFileSync } from "node:fs";
 import path from "node:path";
 import { mulberry32 } from "./prng.js";
+import { makeLifetime } from "../cohort/lifetime-spec.js";
+import { sigmaAt } from "../cohort/discretise.js";
 
 export const REGIONS = ["ALD", "BRV", "COR", "DUN", "EST"] as const; // Aldmark, Brenvale, Corrinth, Dunmoor, Estrava
 const REGION_NAMES: Record<string, string> = { ALD: "Aldmark", BRV: "Brenvale", COR: "Corrinth", DUN: "Dunmoor", EST: "Estrava" };
@@ -29,6 +31,36 @@ const COMMODITIES: Commodity[] = [
   { code: "C400", label: "beverage cans", unit: "kt", base: { ALD: 40, BRV: 25, COR: 30, DUN: 8, EST: 6 }, growth: 0.035, tradeShare: 0.25 },
   { code: "C410", label: "plastic film packaging", unit: "kt", base: { ALD: 60, BRV: 45, COR: 50, DUN: 15, EST: 10 }, growth: 0.04, tradeShare: 0.2 },
 ];
+
+/** Products of the cohort models, their commodities (with the concordance's factor) and their growth. */
+const PRODUCTS = [
+  { name: "vehicles", commodities: [["C100", 1]], growth: 0.025 },
+  { name: "buildings", commodities: [["C200", 0.98], ["C210", 1]], growth: 0.016 },
+  { name: "machinery", commodities: [["C300", 1]], growth: 0.03 },
+  { name: "packaging", commodities: [["C400", 0.95], ["C410", 1]], growth: 0.038 },
+] as const;
+
+/** The expected 1990 apparent consumption of a product in a region, in t (production − exports + imports, before noise). */
+function inflow1990(r: string, product: string): number {
+  const p = PRODUCTS.find((x) => x.name === product)!;
+  let total = 0;
+  for (const [code, factor] of p.commodities) {
+    const c = COMMODITIES.find((x) => x.code === code)!;
+    const mass = c.unit === "piece" ? 1.35 : c.unit === "kt" ? 1000 : 1;
+    const own = c.base[r]! * (1 - c.tradeShare);
+    const imports = REGIONS.filter((e) => e !== r).reduce((a, e) => a + (c.base[e]! * c.tradeShare) / 4, 0);
+    total += factor * mass * (own + imports);
+  }
+  return total;
+}
+
+/** The lifetime of the demo's cohorts before 2006 (as in lifetimes.csv). */
+function lifetimeOf(r: string, product: string): { distribution: string; mean: number; sd?: number } {
+  if (product === "vehicles") return { distribution: "weibull", mean: 14, sd: 5 };
+  if (product === "buildings") return r === "EST" ? { distribution: "truncated-normal", mean: 45, sd: 15 } : { distribution: "lognormal", mean: 60, sd: 20 };
+  if (product === "machinery") return { distribution: "gamma", mean: 25, sd: 8 };
+  return { distribution: "exponential", mean: 1.2 };
+}
 
 /** A code that the concordance does not cover: it must show up as unmapped, not vanish. */
 const UNMAPPED = { code: "C999", label: "unclassified goods" };
@@ -95,8 +127,8 @@ export function generateDemo(dir: string, seed = 20261201): void {
   const groups = ["member,group", ...REGIONS.map((r) => `${r},WORLD`), "ALD,NORTH", "DUN,NORTH", "BRV,SOUTH", "COR,SOUTH", "EST,SOUTH"];
   const regions = ["region,name", ...REGIONS.map((r) => `${r},${REGION_NAMES[r]}`)];
   const commodities = ["commodity,label", ...COMMODITIES.map((c) => `${c.code},${c.label}`), `${UNMAPPED.code},${UNMAPPED.label}`];
-  // Cohort models: lifetimes by product (and one region-specific row), content by cohort,
-  // a steady-state initial stock, and an invented population path with per-capita stock targets.
+  // Cohort models: lifetimes by product (and one region-specific row), content by cohort, the
+  // stock in place by age, and an invented population path with per-capita stock targets.
   const lifetimes = [
     "region,product,first_cohort,last_cohort,distribution,mean,sd,shape,scale",
     ",vehicles,,2005,weibull,14,5,,",
@@ -122,31 +154,33 @@ export function generateDemo(dir: string, seed = 20261201): void {
     ",packaging,aluminium,,,0.35",
     ",packaging,plastics,,,0.65",
   ];
-  const initial = ["region,product,value"];
   const popBase: Record<string, number> = { ALD: 9.5e6, BRV: 6.1e6, COR: 7.4e6, DUN: 1.9e6, EST: 1.2e6 };
   const popGrowth: Record<string, number> = { ALD: 0.001, BRV: 0.004, COR: 0.009, DUN: -0.004, EST: 0.002 };
-  // Invented per-capita stock levels (t per person) near each region's 2023 level.
-  const perCapita: Record<string, Record<string, number>> = {
-    ALD: { vehicles: 0.34, buildings: 19.6, machinery: 0.53, packaging: 0.037 },
-    BRV: { vehicles: 0.25, buildings: 21.1, machinery: 0.6, packaging: 0.042 },
-    COR: { vehicles: 0.083, buildings: 19.7, machinery: 0.27, packaging: 0.039 },
-    DUN: { vehicles: 0.5, buildings: 25, machinery: 0.92, packaging: 0.065 },
-    EST: { vehicles: 0.6, buildings: 24.6, machinery: 1.25, packaging: 0.086 },
-  };
-  for (const r of REGIONS) {
-    const scale = popBase[r]! / 5e6;
-    initial.push(`${r},vehicles,${fmt(1.2e6 * scale)}`, `${r},buildings,${fmt(6e7 * scale)}`, `${r},machinery,${fmt(1.5e6 * scale)}`, `${r},packaging,${fmt(2e4 * scale)}`);
+  // The stock in place at the end of 1989, by age: what the 1990 inflow, grown back at each
+  // product's rate, leaves of every earlier cohort (σ of its lifetime). A history that grew into
+  // 1990, so the stock keeps growing after it (no shrinking fleet in a growing economy).
+  const initial = ["region,product,age,value"];
+  for (const r of REGIONS) for (const p of PRODUCTS) {
+    const i1990 = inflow1990(r, p.name);
+    if (i1990 <= 0) continue;
+    const lt = makeLifetime(lifetimeOf(r, p.name), `demo ${r} ${p.name}`);
+    for (let a = 0; a < 250; a++) {
+      const v = i1990 * Math.pow(1 + p.growth, -(a + 1)) * sigmaAt(lt, a);
+      if (v < 0.5) break; // half a tonne: the rest of the tail is left out of the invented stock
+      initial.push(`${r},${p.name},${a},${fmt(v)}`);
+    }
   }
   const pop = ["region,year,population"];
-  for (const r of REGIONS) for (let y = 2024; y <= 2050; y++) pop.push(`${r},${y},${Math.round(popBase[r]! * Math.pow(1 + popGrowth[r]!, y - 2023))}`);
-  const targets = ["region,product,year,per_capita"];
-  for (const r of REGIONS) for (const [p, v] of Object.entries(perCapita[r]!)) {
-    // Targets saturate; Dunmoor's vehicle stock per person falls after 2035 (car-light policy): negative inflow to flag.
-    for (const y of [2024, 2035, 2050]) {
-      const catchUp = r === "COR" && p === "vehicles" ? 2.5 : 1;
-      const f = y === 2024 ? 1 : y === 2035 ? 1.08 * catchUp : r === "DUN" && p === "vehicles" ? 0.6 : 1.15 * catchUp;
-      targets.push(`${r},${p},${y},${fmt(v * f)}`);
-    }
+  for (const r of REGIONS) for (let y = FIRST_YEAR; y <= 2050; y++) pop.push(`${r},${y},${Math.round(popBase[r]! * Math.pow(1 + popGrowth[r]!, y - 2023))}`);
+  // Scenario: per-capita stock relative to its 2023 level (index 1), in 2035 and 2050. Stocks
+  // saturate; Corrinth catches up in vehicles; Dunmoor's vehicle stock per person falls after
+  // 2035 (a car-light policy): the model must flag the negative inflow that needs.
+  const targets = ["region,product,year,index"];
+  for (const r of REGIONS) for (const p of PRODUCTS) {
+    const cor = r === "COR" && p.name === "vehicles";
+    const dun = r === "DUN" && p.name === "vehicles";
+    targets.push(`${r},${p.name},2035,${fmt(cor ? 1.6 : 1 + p.growth * 4)}`);
+    targets.push(`${r},${p.name},2050,${fmt(cor ? 2.1 : dun ? 0.75 : 1 + p.growth * 6)}`);
   }
   writeFileSync(path.join(dir, "lifetimes.csv"), lifetimes.join("\n") + "\n");
   writeFileSync(path.join(dir, "content.csv"), content.join("\n") + "\n");

@@ -59,6 +59,8 @@ export function defaultSettings(): RunSettings {
   return { poolMinCells: Number(process.env.CAIRN_POOL_MIN_CELLS ?? 2e8) };
 }
 
+const continuesOf = (n: StepNode): string | undefined => (n.step as { continues?: { step: string } }).continues?.step;
+
 /** Steps that a later step continues (they keep their end state in memory). */
 function continuedSteps(plan: Plan): Set<string> {
   const out = new Set<string>();
@@ -146,7 +148,11 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
       pipeline: { name: lp.pipeline.name, file: lp.file, sha256: lp.sha256, variables: lp.variables, base_unit: lp.pipeline.base_unit },
       method: METHOD_NOTE,
       caution: CAUTION,
-      steps: plan.steps.map((n) => ({ id: n.id, kind: n.kind.kind, reads: n.reads.map((r) => r.table), outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })) })),
+      steps: plan.steps.map((n) => ({
+        id: n.id, kind: n.kind.kind, reads: n.reads.map((r) => r.table),
+        ...(continuesOf(n) ? { continues: continuesOf(n) } : {}),
+        outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })),
+      })),
       inputs,
       sources: srcReports,
       outputs,

@@ -31,6 +31,7 @@ const Options = z.object({
     column: Name.describe("the driver column"),
     keys: z.array(Name).default([]).describe("the keys joining the driver to the path (besides year)"),
   }).strict().optional().describe("multiply every value by a yearly driver (e.g. per-capita targets × population)"),
+  as: z.record(Name, Name).optional().describe("new names for value columns in the output, e.g. {per_capita: stock} when multiplied by population"),
   unit: UnitText.optional().describe("the unit of the resulting values (converted to the base unit; adds a unit column), e.g. t for a stock"),
 });
 type O = z.output<typeof Options> & { id: string };
@@ -52,6 +53,8 @@ export const yearlyPathStep = defineStep({
     const missing = hasColumns(input, [...keys, "year", ...values]);
     if (missing.length) ctx.fail("input", `table ${o.input} lacks column(s) ${missing.join(", ")}; it has ${input.columns.map((c) => c.name).join(", ")}`);
     if (!values.length) ctx.fail("values", `table ${o.input} has no DOUBLE column to interpolate; name them in values`);
+    const badAs = Object.keys(o.as ?? {}).filter((k) => !values.includes(k));
+    if (badAs.length) ctx.fail("as", `${badAs.join(", ")} not among the values (${values.join(", ")})`);
     if (o.multiply) {
       const d = ctx.schemaOf(o.multiply.table, "multiply");
       const m = hasColumns(d, [...o.multiply.keys, "year", o.multiply.column]);
@@ -61,7 +64,7 @@ export const yearlyPathStep = defineStep({
     }
     const how = o.method === "monotone-cubic" ? "monotone cubic (Fritsch–Carlson)" : o.method === "linear" ? "linear interpolation" : "held values";
     const columns: ColumnDecl[] = [...keys.map((k) => keyFrom(input, k)), year(),
-      ...values.map((v) => ({ name: v, type: "DOUBLE", description: `${v} by year: ${how} between anchors${o.multiply ? `, times ${o.multiply.table}.${o.multiply.column}` : ""}`, ...(o.unit ? { unit: "unit-column" as const } : {}) })),
+      ...values.map((v) => ({ name: o.as?.[v] ?? v, type: "DOUBLE", description: `${v} by year: ${how} between anchors${o.multiply ? `, times ${o.multiply.table}.${o.multiply.column}` : ""}`, ...(o.unit ? { unit: "unit-column" as const } : {}) })),
       ...(o.unit ? [unitColumn("the values")] : [])];
     return [{ name: o.id, role: "main", description: `yearly path of ${values.join(", ")} through the anchor years of ${o.input}`, keys: [...keys, "year"], columns }];
   },
@@ -138,7 +141,7 @@ export const yearlyPathStep = defineStep({
     }
     const valueExpr = (vi: number) => `${d ? `r.${ident(`__v${vi}`)} * CAST(p.${ident(d.column)} AS DOUBLE)` : `r.${ident(`__v${vi}`)}`}${factor !== 1 ? ` * ${factor}` : ""}`;
     await s.run(`CREATE OR REPLACE TABLE ${ident(o.id)} AS
-      SELECT ${keys.map((k) => `m.${ident(k)}`).join(", ")}${keys.length ? "," : ""} CAST(r.year AS BIGINT) AS year, ${values.map((v, vi) => `${valueExpr(vi)} AS ${ident(v)}`).join(", ")}
+      SELECT ${keys.map((k) => `m.${ident(k)}`).join(", ")}${keys.length ? "," : ""} CAST(r.year AS BIGINT) AS year, ${values.map((v, vi) => `${valueExpr(vi)} AS ${ident(o.as?.[v] ?? v)}`).join(", ")}
         ${unitText ? `, ${lit(unitText)} AS unit` : ""}
       FROM ${ident(raw)} r JOIN ${sid} m USING (sid)
         ${d ? `JOIN ${ident(d.table)} p ON ${[...d.keys.map((k) => `p.${ident(k)} = m.${ident(k)}`), "p.year = r.year"].join(" AND ")}` : ""}
