@@ -6,6 +6,7 @@ import { TOOL_VERSION } from "../run/runner.js";
 import { registerRun } from "./run.js";
 import { registerCheck } from "./check.js";
 import { registerSchema } from "./schema.js";
+import { registerDemo } from "./demo.js";
 
 const program = new Command();
 program
@@ -20,6 +21,7 @@ program.exitOverride((err) => {
 registerRun(program);
 registerCheck(program);
 registerSchema(program);
+registerDemo(program);
 
 program.parseAsync(process.argv).catch((e: unknown) => {
   process.stderr.write(`cairn: ${(e as Error).message ?? String(e)}\n`);

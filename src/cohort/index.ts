@@ -5,3 +5,4 @@ export * from "./kernels.js";
 export * from "./models.js";
 export * from "./lifetime-spec.js";
 export * from "./special.js";
+export * from "./interpolate.js";

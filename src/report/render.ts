@@ -68,3 +68,30 @@ export function yearLines(o: { title: string; description: string; rows: YearRow
     config: BASE_CONFIG,
   } as unknown as VlSpec;
 }
+
+/** Small multiples: one panel per series with its own y scale (small series stay readable beside large ones). */
+export function yearFacets(o: { title: string; description: string; rows: YearRow[]; yTitle: string; seriesTitle: string; seam?: number; columns?: number; width?: number; height?: number }): VlSpec {
+  const layers: unknown[] = [{
+    mark: { type: "line", strokeWidth: 2 },
+    encoding: {
+      x: { field: "year", type: "quantitative", title: "year", axis: { format: "d", tickMinStep: 1 }, scale: { zero: false, nice: false } },
+      y: { field: "value", type: "quantitative", title: o.yTitle, axis: { format: "~s" }, scale: { zero: true } },
+      strokeDash: { field: "phase", type: "nominal", title: "", scale: { domain: ["history", "scenario"], range: [[1, 0], [6, 3]] } },
+      color: { field: "phase", type: "nominal", title: "", scale: { domain: ["history", "scenario"], range: ["#3b6ea8", "#c8642c"] } },
+    },
+  }];
+  if (o.seam !== undefined) {
+    layers.push({ transform: [{ calculate: String(o.seam), as: "seam" }, { aggregate: [{ op: "count", as: "n" }], groupby: ["seam"] }], mark: { type: "rule", color: "#888", strokeDash: [2, 2] }, encoding: { x: { field: "seam", type: "quantitative" } } });
+  }
+  return {
+    $schema: "https://vega.github.io/schema/vega-lite/v6.json",
+    title: o.title,
+    description: o.description,
+    data: { values: o.rows },
+    facet: { field: "series", type: "nominal", title: o.seriesTitle, header: { labelFontSize: 12, labelFontWeight: "bold" } },
+    columns: o.columns ?? 2,
+    spec: { width: o.width ?? 260, height: o.height ?? 150, layer: layers },
+    resolve: { scale: { y: "independent" } },
+    config: BASE_CONFIG,
+  } as unknown as VlSpec;
+}
