@@ -36,7 +36,19 @@ function bindingsVersion() {
 
 rmSync(out, { force: true });
 rmSync(`${out}.json`, { force: true });
+const fsx = path.join(root, "build", "cairn_fsx.node");
+rmSync(fsx, { force: true });
 const inc = headers();
+// The file-system exchange (native/fsx.c): needs only Node's headers and a C compiler.
+if (process.env.CAIRN_NATIVE !== "0" && inc && process.platform === "linux") {
+  mkdirSync(path.dirname(fsx), { recursive: true });
+  try {
+    execFileSync(process.env.CC ?? "cc", ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "fsx.c"), "-o", fsx], { stdio: "inherit" });
+    say(`built ${path.relative(root, fsx)}`);
+  } catch (e) {
+    say(`fsx: ${e.message.split("\n")[0]}; not built, a replaced run directory is swapped by two renames`);
+  }
+}
 const lib = duckdbLibDir();
 if (process.env.CAIRN_NATIVE === "0") say("CAIRN_NATIVE=0: not built");
 else if (!inc) say("Node's headers (node_api.h) not found; not built, the hand-off uses the bindings' calls");

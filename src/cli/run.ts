@@ -3,7 +3,7 @@ import { exitCodeOf } from "../errors.js";
 import { loadPipeline, parseSet } from "../spec/load.js";
 import { runPipeline, type RunReport } from "../run/runner.js";
 import { Progress } from "../run/progress.js";
-import { collect, fail } from "./common.js";
+import { collect, fail, parsePath, parseSize, parseThreads } from "./common.js";
 
 export function printReport(r: RunReport): string {
   const lines: string[] = [];
@@ -32,14 +32,14 @@ export function registerRun(program: Command): void {
     .command("run")
     .description("run a pipeline file and publish its tables, audit table and manifest into a run directory")
     .argument("<file>", "the pipeline file (YAML)")
-    .option("--out <dir>", "the run directory itself (default runs/<pipeline>/<UTC timestamp>/)")
+    .option("--out <dir>", "the run directory itself (default runs/<pipeline>/<UTC timestamp>/)", parsePath)
     .option("--replace", "swap an existing --out directory for the new run", false)
     .option("--set <name=value>", "give a variable used as ${NAME} in the file (repeatable)", collect, [] as string[])
     .option("--quiet", "no progress on stderr", false)
     .option("--json", "print a machine-readable summary on stdout", false)
-    .option("--threads <n>", "DuckDB threads (default: all cores)", (v) => parseInt(v, 10))
-    .option("--memory-limit <size>", "DuckDB memory limit, e.g. 6GB; beyond it DuckDB spills to disk")
-    .option("--temp-dir <dir>", "where DuckDB spills (default: inside the staging directory)")
+    .option("--threads <n>", "DuckDB threads, 1 to 1024 (default: all cores)", parseThreads)
+    .option("--memory-limit <size>", "DuckDB memory limit, e.g. 6GB; beyond it DuckDB spills to disk", parseSize)
+    .option("--temp-dir <dir>", "where DuckDB spills (default: inside the staging directory)", parsePath)
     .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string }) => {
       let report: RunReport;
       try {

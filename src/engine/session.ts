@@ -31,6 +31,9 @@ export class Session {
     if (opts.memoryLimit) config.memory_limit = opts.memoryLimit;
     if (opts.threads) config.threads = String(opts.threads);
     if (opts.tempDirectory) config.temp_directory = opts.tempDirectory;
+    // No extension is ever installed or loaded from outside (only those built into the engine).
+    config.autoinstall_known_extensions = "false";
+    config.autoload_known_extensions = "false";
     const instance = await DuckDBInstance.create(":memory:", config);
     const conn = await instance.connect();
     // Keep file order in scans and writes: needed for row numbers and a fixed output order.
@@ -71,6 +74,20 @@ export class Session {
   async columns(table: string): Promise<{ name: string; type: string }[]> {
     const rows = await this.all(`DESCRIBE ${'"' + table.replace(/"/g, '""') + '"'}`);
     return rows.map((r) => ({ name: String(r.column_name), type: String(r.column_type) }));
+  }
+
+  /**
+   * Switches off the engine's access to files, databases and extensions outside `dirs` (the run's
+   * staging and spill folders) and `files` (the inputs, read by views), and locks the
+   * configuration, so no SQL can switch it back.
+   */
+  async sandbox(dirs: string[], files: string[] = []): Promise<void> {
+    const q = (x: string) => `'${x.replace(/'/g, "''")}'`;
+    await this.conn.run(`SET allowed_directories = [${dirs.map((d) => q(d.endsWith("/") ? d : d + "/")).join(", ")}]`);
+    // The input files themselves (a clean Parquet source stays a view over its file; verified unchanged, sources/verify.ts).
+    if (files.length) await this.conn.run(`SET allowed_paths = [${files.map(q).join(", ")}]`);
+    await this.conn.run("SET enable_external_access = false");
+    await this.conn.run("SET lock_configuration = true");
   }
 
   async version(): Promise<string> {

@@ -230,10 +230,10 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
     await ctx.audits.check({
       step: r.step, check: `unmapped-share:${v}`, severity: a.unmapped_limit_severity, unit: "1",
       items: `SELECT MAP {}::MAP(VARCHAR, VARCHAR) AS keys, NULL AS year,
-          CASE WHEN sum(abs(${ident("in_" + v)})) > 0 THEN sum(abs(${ident("un_" + v)})) / sum(abs(${ident("in_" + v)})) ELSE 0 END AS observed, 0.0 AS expected,
+          CASE WHEN ${ctx.exact.sum(`abs(${ident("in_" + v)})`)} > 0 THEN ${ctx.exact.sum(`abs(${ident("un_" + v)})`)} / ${ctx.exact.sum(`abs(${ident("in_" + v)})`)} ELSE 0 END AS observed, 0.0 AS expected,
           ${a.unmapped_max_share} AS tolerance,
-          round(100 * CASE WHEN sum(abs(${ident("in_" + v)})) > 0 THEN sum(abs(${ident("un_" + v)})) / sum(abs(${ident("in_" + v)})) ELSE 0 END, 4) || ' % of the ${v} mass (' ||
-          sum(abs(${ident("un_" + v)})) || ' ${unit} of ' || sum(abs(${ident("in_" + v)})) || ' ${unit}) is unmapped, above the limit of ' || ${lit(String(100 * a.unmapped_max_share))} || ' % (audit option unmapped_max_share); see ' || ${lit(r.unmapped)} AS message
+          round(100 * CASE WHEN ${ctx.exact.sum(`abs(${ident("in_" + v)})`)} > 0 THEN ${ctx.exact.sum(`abs(${ident("un_" + v)})`)} / ${ctx.exact.sum(`abs(${ident("in_" + v)})`)} ELSE 0 END, 4) || ' % of the ${v} mass (' ||
+          ${ctx.exact.sum(`abs(${ident("un_" + v)})`)} || ' ${unit} of ' || ${ctx.exact.sum(`abs(${ident("in_" + v)})`)} || ' ${unit}) is unmapped, above the limit of ' || ${lit(String(100 * a.unmapped_max_share))} || ' % (audit option unmapped_max_share); see ' || ${lit(r.unmapped)} AS message
         FROM ${cons}`,
       failWhen: "observed > tolerance",
       failMessage: "unmapped share above the limit",

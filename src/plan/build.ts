@@ -66,7 +66,7 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
         throw new PipelineError(`${lp.locate(["sources", name])}: the name ${JSON.stringify(name)} is reserved for the tool's own tables (${RESERVED_NAMES.join(", ")}, and names starting with ${INTERNAL_PREFIX}); choose another`);
       }
       const schema = sourceSchema(name, src);
-      if (src.filter) await sandbox.checkFilter(src.filter, schema.columns.map((c) => c.name), lp.locate(["sources", name, "filter"]));
+      if (src.filter) await sandbox.checkFilter(src.filter, schema.columns, lp.locate(["sources", name, "filter"]));
       schemas.set(name, schema);
       sources.push({ name, source: src, schema, config: false, readBy: [] });
     }

@@ -112,7 +112,7 @@ export class SqlSandbox {
   }
 
   /** Checks a source filter: one condition, no table, no subquery reaching a table, no table function. */
-  async checkFilter(cond: string, columns: readonly string[], where: string): Promise<void> {
+  async checkFilter(cond: string, columns: readonly { name: string; type: string }[], where: string): Promise<void> {
     let stmt: unknown;
     try {
       stmt = await this.parse(`SELECT * FROM __filter_target WHERE (${cond})`);
@@ -123,13 +123,9 @@ export class SqlSandbox {
     walk(stmt, refs);
     const extra = refs.tables.filter((t) => t.name !== "__filter_target");
     if (extra.length || refs.functions.length || refs.tables.length !== 1) {
-      throw new PipelineError(`${where}: refused: a filter reads only its own source's columns (${columns.join(", ")}); it names ${[...extra.map((t) => `table ${t.name}`), ...refs.functions.map((f) => `function ${f.name}()`)].join(", ") || "another relation"}: ${excerpt(cond)}`);
+      throw new PipelineError(`${where}: refused: a filter reads only its own source's columns (${columns.map((c) => c.name).join(", ")}); it names ${[...extra.map((t) => `table ${t.name}`), ...refs.functions.map((f) => `function ${f.name}()`)].join(", ") || "another relation"}: ${excerpt(cond)}`);
     }
-    await this.bind(`SELECT * FROM __filter_target WHERE (${cond})`, { __filter_target: { keys: [], columns: columns.map((c) => ({ name: c, type: "VARCHAR", description: "" })) } }, where, "filter")
-      .catch((e: Error) => {
-        // Types are not known here for every column; only unknown names are errors.
-        if (/not found|does not exist|Referenced column/i.test(e.message)) throw e;
-      });
+    await this.bind(`SELECT * FROM __filter_target WHERE (${cond})`, { __filter_target: { keys: [], columns: columns.map((c) => ({ name: c.name, type: c.type, description: "" })) } }, where, "filter");
   }
 
   /** Output columns of a SELECT over empty tables with the given schemas. */

@@ -6,7 +6,7 @@
 import { writeFileSync } from "node:fs";
 import path from "node:path";
 import { createRequire } from "node:module";
-import { AuditFailure, CairnError, DataError, exitCodeOf } from "../errors.js";
+import { AuditFailure, CairnError, DataError, InputChanged, ResourceError, exitCodeOf, resourceFailure, firstLines } from "../errors.js";
 import { Session, type SessionOptions } from "../engine/session.js";
 import { Exact, ident, lit } from "../engine/sql.js";
 import { AuditLog, AUDIT_TABLE, type AuditSummary } from "../audit/log.js";
@@ -14,7 +14,8 @@ import { initRejects, loadSource, REJECTS_TABLE, type InputFile, type SourceResu
 import type { RunSettings, StepContext, TableInfo } from "../steps/types.js";
 import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
-import { RunDir } from "../publish/rundir.js";
+import { checkTarget, RunDir } from "../publish/rundir.js";
+import { InputWatch } from "../sources/verify.js";
 import { Progress } from "./progress.js";
 import { massFactor } from "../units.js";
 import { METHOD_NOTE, CAUTION } from "./method.js";
@@ -82,13 +83,22 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
   // The plan first: a file that is not a valid pipeline stops here (exit 2), before anything is written.
   const plan = await buildPlan(lp);
   const out = opts.out ?? defaultRunDir(lp, opts.cwd, started);
+  // The target: never the current folder, an input's folder or anything but an earlier run (exit 2); then its lock (exit 5).
+  checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd });
   const rd = new RunDir(out);
-  for (const m of rd.cleanStale()) progress.info(m);
-  if (rd.exists() && !opts.replace) {
-    throw new CairnError(`${out} already exists; pass --replace to swap it for the new run, or choose another --out`, 2);
+  rd.acquire();
+  let s: Session;
+  try {
+    for (const m of rd.cleanStale()) progress.info(m);
+    checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd }); // again, under the lock
+    rd.create();
+    s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
+  } catch (e) {
+    rd.discard();
+    throw resourceFailure(e, { tempDir: opts.tempDirectory, outDir: out }) ?? e;
   }
-  rd.create();
-  const s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
+  const watch = new InputWatch();
+  const resources = { memoryLimit: opts.memoryLimit, tempDir: opts.tempDirectory ?? path.join(rd.staging, ".spill"), outDir: path.resolve(out) };
   const audits = new AuditLog(s, lp.pipeline.base_unit);
   const timings: Record<string, number> = {};
   const tables = new Map<string, TableInfo>();
@@ -171,11 +181,14 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
   try {
     await audits.init();
     await initRejects(s);
-    await loadSources(ctx, lp, plan, sources, inputs, t);
+    await loadSources(ctx, lp, plan, sources, inputs, t, watch);
+    // From here on pipeline SQL runs in a sandbox: no file, database or extension outside the run.
+    await s.sandbox([rd.staging, resources.tempDir], inputs.map((f) => f.path));
     // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
     for (const node of plan.steps) await node.kind.check?.(ctx, node.step as never);
     for (const node of plan.steps) {
       await runStep(ctx, node, t, streamed);
+      watch.checkStat(`after step ${node.id}`);
       if (audits.failedErrors.length > 0) {
         const f = audits.failedErrors;
         throw new AuditFailure(
@@ -185,6 +198,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
       }
       progress.info(`step ${node.id}: done in ${timings[`step:${node.id}`]} s`);
     }
+    await t("verify_inputs", () => watch.verifyHashes());
     await t("publish", async () => {
       for (const info of tables.values()) {
         if (!info.step) continue;
@@ -204,13 +218,20 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     if (!(e instanceof CairnError) && /out of range|Conversion Error/i.test(String((e as Error).message)) && /INT64|BIGINT|round/i.test(String((e as Error).message))) {
       e = new DataError(`a quantity too large to sum exactly (one value above ${ctx.exact.maxValue.toExponential(1)} ${lp.pipeline.base_unit}; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
     }
-    if (e instanceof DataError || e instanceof AuditFailure) {
+    e = resourceFailure(e, resources) ?? e;
+    if (e instanceof DataError || e instanceof AuditFailure || e instanceof ResourceError || e instanceof InputChanged) {
       try {
         outputs = [];
         return await finish("failed", e);
       } catch (e2) {
+        try {
+          s.close();
+        } catch {
+          /* already closed */
+        }
         rd.discard();
-        throw e2;
+        // A second failure while keeping DIR.failed (a full disk, say) does not hide the first.
+        throw e instanceof ResourceError ? e : resourceFailure(e2, resources) ?? e2;
       }
     }
     try {
@@ -219,19 +240,30 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
       /* already closed */
     }
     rd.discard();
-    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${cleanMessage(e.message)}`;
+    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${cleanMessage(firstLines(e.message))}`;
     throw e;
   }
 }
 
+/** Paths a run must never replace: the pipeline file's folder and every input (the fixed part of each source path). */
+export function protectedPaths(lp: LoadedPipeline): string[] {
+  const out = [lp.dir];
+  for (const src of Object.values(lp.pipeline.sources)) {
+    const abs = path.resolve(lp.dir, src.path);
+    const glob = abs.search(/[*?[{]/);
+    out.push(glob >= 0 ? path.dirname(abs.slice(0, glob) + "x") : abs);
+  }
+  return out;
+}
+
 async function loadSources(ctx: StepContext, lp: LoadedPipeline, plan: Plan, sources: SourceResult[], inputs: InputFile[],
-  t: <T>(label: string, f: () => Promise<T>) => Promise<T>): Promise<void> {
+  t: <T>(label: string, f: () => Promise<T>) => Promise<T>, watch: InputWatch): Promise<void> {
   for (const node of plan.sources) {
     const { name, source: src } = node;
     ctx.progress.info(`source ${name}: loading ${src.path}`);
     let r: SourceResult;
     try {
-      r = await t(`source:${name}`, () => loadSource(ctx.session, lp.pipeline, name, src, lp.dir, { log: (m) => ctx.progress.info(m), located: node.config }));
+      r = await t(`source:${name}`, () => loadSource(ctx.session, lp.pipeline, name, src, lp.dir, { log: (m) => ctx.progress.info(m), located: node.config, watch }));
     } catch (e) {
       const partial = (e as { source?: SourceResult }).source;
       if (partial) {

@@ -3,10 +3,10 @@
  * unit-converted in SQL. Rows that break the declared types or constraints go to the rejects
  * table with file, row and reason; nothing is dropped silently.
  */
-import { createHash } from "node:crypto";
-import { createReadStream, existsSync, statSync } from "node:fs";
+import { existsSync, statSync } from "node:fs";
 import path from "node:path";
-import { DataError, PipelineError } from "../errors.js";
+import { DataError, PipelineError, firstLines, resourceFailure } from "../errors.js";
+import { InputWatch } from "./verify.js";
 import type { Session } from "../engine/session.js";
 import { ident, idents, lit } from "../engine/sql.js";
 import type { ColumnSpecT, Pipeline, SourceT } from "../spec/schema.js";
@@ -134,23 +134,6 @@ function firstLine(e: unknown): string {
   return String((e as Error).message ?? e).split("\n")[0]!;
 }
 
-async function sha256File(file: string): Promise<string> {
-  const h = createHash("sha256");
-  await new Promise<void>((resolve, reject) => {
-    createReadStream(file)
-      .on("data", (d) => h.update(d))
-      .on("end", () => resolve())
-      .on("error", reject);
-  });
-  return h.digest("hex");
-}
-
-export async function hashFiles(files: string[]): Promise<Map<string, { bytes: number; sha256: string }>> {
-  const out = new Map<string, { bytes: number; sha256: string }>();
-  await Promise.all(files.map(async (f) => out.set(f, { bytes: statSync(f).size, sha256: await sha256File(f) })));
-  return out;
-}
-
 export async function initRejects(s: Session): Promise<void> {
   await s.run(`CREATE OR REPLACE TABLE ${REJECTS_TABLE} (source VARCHAR, file VARCHAR, "row" BIGINT, line BIGINT,
     "column" VARCHAR, value VARCHAR, reason VARCHAR)`);
@@ -219,6 +202,8 @@ export interface LoadOptions {
    * messages about the small tables that configure steps ("file:line").
    */
   located?: boolean;
+  /** Records (hash, size, time) of the files before they are read, for the checks during the run. */
+  watch?: InputWatch;
 }
 
 /** The view that holds a located source's rows with `__file` and `__line`. */
@@ -229,7 +214,16 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   const log = opts.log ?? (() => {});
   const { files, format } = await sourceFiles(s, name, src, dir);
   await checkColumns(s, name, src, files, format);
-  const hashes = await hashFiles(files);
+  const hashes = await (opts.watch ?? new InputWatch()).record(name, files);
+  // Validation scans the values: DuckDB may otherwise fold a check from a Parquet file's footer
+  // statistics (a "min ≥ 0" in the footer would hide negative values) or skip row groups by them.
+  await s.run("SET disabled_optimizers = 'statistics_propagation,filter_pushdown'");
+  try {
+    return await loadChecked();
+  } finally {
+    await s.run("RESET disabled_optimizers");
+  }
+  async function loadChecked(): Promise<SourceResult> {
   const cols = normaliseColumns(src.columns);
   const header = src.csv?.header ?? true;
   const csvRejT = `__csvrej_${name}`;
@@ -341,7 +335,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
   try {
     await buildChecked(Boolean(opts.located) && format === "csv");
   } catch (e) {
-    throw new DataError(`source ${name}: cannot read ${files.length === 1 ? files[0] : src.path}: ${firstLine(e)}`);
+    throw resourceFailure(e) ?? new DataError(`source ${name}: cannot read ${files.length === 1 ? files[0] : src.path}: ${firstLines(String((e as Error).message ?? e))}`);
   }
   // A clean Parquet source is a view already checked: no rejects to count again.
   if (cleanSelect) await s.run(`CREATE OR REPLACE VIEW ${ident(checkedView)} AS ${cleanSelect}`);
@@ -420,4 +414,5 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     throw err;
   }
   return result;
+  }
 }

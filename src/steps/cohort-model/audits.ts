@@ -123,7 +123,7 @@ export async function materialAudits(ctx: StepContext, o: O, inp: Inputs, res: R
   // Σ over materials = the model run once with the summed content, cohorts in place included (linearity of the model).
   await ctx.audits.check({
     step: o.id, check: "materials-total", severity: "error",
-    items: `WITH t AS (SELECT sid, yi, sum(stock) AS st, max(abs(stock)) AS mx FROM ${ident(t.matRaw)} GROUP BY sid, yi)
+    items: `WITH t AS (SELECT sid, yi, sum(stock ORDER BY mi) AS st, max(abs(stock)) AS mx FROM ${ident(t.matRaw)} GROUP BY sid, yi)
       SELECT ${keyMap(o.keys, "m")} AS keys, t.yi + ${inp.y0} AS year, t.st AS observed, c.stock AS expected, ${a.balance_rtol} * greatest(abs(c.stock), t.mx) + ${a.balance_atol} AS tolerance,
         'sum of material stocks ≠ stock computed with the total content' AS message
       FROM t JOIN ${ident(t.sumRaw)} c USING (sid, yi) JOIN ${sidT} m USING (sid) SEMI JOIN ${ident(t.withContent)} h USING (sid)`,

@@ -94,7 +94,7 @@ async function initialStock(s: Session, ctx: StepContext, o: O, n: number): Prom
     for (let r = 0; r < rows; r++) byAge[(columns[0] as Int32Array)[r]! * A + (columns[1] as Int32Array)[r]!] += (columns[2] as Float64Array)[r]!;
     return { byAge, total: null, A };
   }
-  const { rows, columns } = await readColumns(s, `SELECT m.sid, CAST(sum(i.value) AS DOUBLE) FROM ${ident(t)} i JOIN ${ident(sidTable(o))} m USING (${K}) GROUP BY m.sid`, ["i32", "f64"]);
+  const { rows, columns } = await readColumns(s, `SELECT m.sid, CAST(sum(i.value ORDER BY i.value) AS DOUBLE) FROM ${ident(t)} i JOIN ${ident(sidTable(o))} m USING (${K}) GROUP BY m.sid`, ["i32", "f64"]);
   const total = new Float64Array(n);
   for (let r = 0; r < rows; r++) total[(columns[0] as Int32Array)[r]!] = (columns[1] as Float64Array)[r]!;
   return { byAge: null, total, A: 0 };
