@@ -137,6 +137,12 @@ export class RunDir {
     if (!existsSync(this.parent)) return [];
     const cleaned: string[] = [];
     for (const name of readdirSync(this.parent)) {
+      // Another target's lock whose holder died (a crashed run): removed.
+      const l = /^\.(.+)\.lock$/.exec(name);
+      if (l && l[1] !== this.base && !isHeld(path.join(this.parent, name))) {
+        rmSync(path.join(this.parent, name), { force: true });
+        continue;
+      }
       const m = /^\.(.+)\.(staging|old)-(\d+)$/.exec(name);
       if (!m) continue;
       const full = path.join(this.parent, name);

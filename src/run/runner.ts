@@ -16,6 +16,7 @@ import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
 import { checkTarget, RunDir } from "../publish/rundir.js";
 import { InputWatch } from "../sources/verify.js";
+import { fault } from "./fault.js";
 import { Progress } from "./progress.js";
 import { massFactor } from "../units.js";
 import { METHOD_NOTE, CAUTION } from "./method.js";
@@ -188,6 +189,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     for (const node of plan.steps) await node.kind.check?.(ctx, node.step as never);
     for (const node of plan.steps) {
       await runStep(ctx, node, t, streamed);
+      fault(`after-step:${node.id}`);
       watch.checkStat(`after step ${node.id}`);
       if (audits.failedErrors.length > 0) {
         const f = audits.failedErrors;
@@ -198,6 +200,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
       }
       progress.info(`step ${node.id}: done in ${timings[`step:${node.id}`]} s`);
     }
+    fault("before-publish");
     await t("verify_inputs", () => watch.verifyHashes());
     await t("publish", async () => {
       for (const info of tables.values()) {
@@ -274,6 +277,7 @@ async function loadSources(ctx: StepContext, lp: LoadedPipeline, plan: Plan, sou
     }
     sources.push(r);
     inputs.push(...r.files);
+    fault(`after-source:${name}`);
     ctx.tables.set(name, { name, keys: node.schema.keys, publish: false });
     ctx.progress.info(`source ${name}: ${r.rows_loaded} rows loaded, ${r.rows_rejected} rejected, ${r.rows_filtered} filtered out`);
     await ctx.audits.note(name, "rejected-rows", "warning", r.rows_rejected > 0 ? "fail" : "pass",
