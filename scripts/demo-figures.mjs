@@ -27,3 +27,8 @@ const ms = await q(`SELECT m.year, sum(m.stock) / 1e6 AS materials, any_value(p.
 for (const r of ms) console.log(`material stock ÷ product stock ${r.year}: ${r.materials.toFixed(1)} Mt / ${r.products.toFixed(1)} Mt`);
 const v = await q(`SELECT year, sum(stock) / 1e6 s, sum(inflow) / 1e6 i, sum(outflow) / 1e6 o FROM '$D/stocks.parquet' WHERE product = 'vehicles' AND year IN (1990, 2004) GROUP BY 1 ORDER BY 1`);
 console.log(`vehicle fleet: ${v[0].s.toFixed(2)} Mt (1990; inflow ${v[0].i.toFixed(3)}, outflow ${v[0].o.toFixed(3)} Mt/yr) → ${v[1].s.toFixed(2)} Mt (2004): ${pct(v[0].s, v[1].s)}`);
+const mix = await q(`WITH m AS (SELECT product, material, sum(inflow) AS model FROM '$D/stocks_materials.parquet' WHERE year BETWEEN 2010 AND 2023 GROUP BY ALL),
+  c AS (SELECT product, material, sum(greatest(consumption, 0)) AS cons FROM '$D/consumption.parquet' WHERE year BETWEEN 2010 AND 2023 GROUP BY ALL)
+  SELECT product, material, model / 1e6 AS model, cons / 1e6 AS cons FROM m JOIN c USING (product, material) ORDER BY 1, 2`);
+console.log("material inflow to stock vs material apparent consumption, 2010–2023 (Mt):");
+for (const r of mix) console.log(`  ${r.product.padEnd(10)} ${r.material.padEnd(10)} ${r.model.toFixed(2).padStart(8)} vs ${r.cons.toFixed(2).padStart(8)} (${pct(r.cons, r.model)})`);

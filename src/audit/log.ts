@@ -109,6 +109,31 @@ export class AuditLog {
   }
 
   /**
+   * A check computed outside SQL over `items` items: its failing items given one by one (each
+   * its own row), and one summary row, as for `check`.
+   */
+  async fromItems(c: { step: string; check: string; severity: "error" | "warning"; unit?: string; items: number; worst: number | null;
+    failing: { keys: Record<string, string>; year: number | null; observed: number; expected: number; tolerance: number; message: string }[] }): Promise<CheckResult> {
+    const unit = c.unit ?? this.baseUnit;
+    const head = `${this.stepIndex}, ${lit(c.step)}, ${lit(c.check)}, ${lit(c.severity)}`;
+    const mapOf = (k: Record<string, string>) => (Object.keys(k).length ? `MAP([${Object.keys(k).map((x) => lit(x)).join(", ")}], [${Object.values(k).map((x) => lit(x)).join(", ")}])` : "MAP {}::MAP(VARCHAR, VARCHAR)");
+    for (let i = 0; i < c.failing.length; i += 500) {
+      const rows = c.failing.slice(i, i + 500).map((f) => `(${head}, 'fail', 'item', ${mapOf(f.keys)}, ${f.year ?? "NULL"}, ${lit(f.observed)}, ${lit(f.expected)}, ${lit(f.observed - f.expected)}, ${lit(f.tolerance)}, ${lit(unit)}, NULL, NULL, NULL, NULL, ${lit(f.message)})`);
+      await this.s.run(`INSERT INTO ${AUDIT_TABLE} VALUES ${rows.join(", ")}`);
+    }
+    const failed = c.failing.length;
+    const worstFail = failed ? Math.max(...c.failing.map((f) => Math.abs(f.observed - f.expected))) : null;
+    const worst = c.worst === null ? worstFail : Math.max(c.worst, worstFail ?? 0);
+    await this.s.run(`INSERT INTO ${AUDIT_TABLE} VALUES (${head}, ${lit(failed > 0 ? "fail" : "pass")}, 'summary', MAP {}, NULL, NULL, NULL, NULL, NULL, ${lit(unit)},
+      ${c.items}, ${failed}, ${lit(worst)}, ${lit(worstFail)}, ${lit(`${c.items} items checked, ${c.items - failed} passed, ${failed} failed`)})`);
+    if (failed > 0 && c.severity === "error") {
+      const f = c.failing[0]!;
+      this.failedErrors.push({ step: c.step, check: c.check, failed, example: `${JSON.stringify(f.keys)}${f.year == null ? "" : ` year ${f.year}`}: ${f.message}` });
+    }
+    return { check: c.check, severity: c.severity, items: c.items, failed };
+  }
+
+  /**
    * A check decided outside SQL (e.g. rows rejected, series without content): one summary row
    * with its counts, and a message. `counts` defaults to one item, failed when status is fail.
    */

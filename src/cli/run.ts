@@ -13,10 +13,12 @@ export function printReport(r: RunReport): string {
   for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
   if (r.audit) {
     lines.push(`audit: ${r.audit.errors} error item(s), ${r.audit.warnings} warning item(s) failed`);
-    const w = (x: number | null, u: string | null) => (x == null ? "-" : `${x.toPrecision(3)}${u ? ` ${u}` : ""}`);
-    lines.push(`  ${"step".padEnd(18)} ${"check".padEnd(36)} ${"severity".padEnd(8)} ${"status".padEnd(6)} ${"items".padStart(8)} ${"failed".padStart(7)}  worst |residual| (failing)`);
+    const w = (x: number | null, u: string | null) => (x == null ? "-" : `${Number(x.toPrecision(3))}${u && u !== "1" ? ` ${u}` : ""}`);
+    const sw = Math.max(4, ...r.audit.checks.map((c) => c.step.length));
+    const cw = Math.max(5, ...r.audit.checks.map((c) => c.check.length));
+    lines.push(`  ${"step".padEnd(sw)} ${"check".padEnd(cw)} ${"severity".padEnd(8)} ${"status".padEnd(6)} ${"items".padStart(8)} ${"failed".padStart(7)}  worst |residual| (failing)`);
     for (const c of r.audit.checks) {
-      lines.push(`  ${c.step.padEnd(18)} ${c.check.padEnd(36)} ${c.severity.padEnd(8)} ${(c.status === "fail" ? "FAIL" : "pass").padEnd(6)} ${String(c.items).padStart(8)} ${String(c.failed).padStart(7)}  ${w(c.worst_residual, c.unit)}${c.failed ? ` (${w(c.worst_failing_residual, c.unit)})` : ""}`);
+      lines.push(`  ${c.step.padEnd(sw)} ${c.check.padEnd(cw)} ${c.severity.padEnd(8)} ${(c.status === "fail" ? "FAIL" : "pass").padEnd(6)} ${String(c.items).padStart(8)} ${String(c.failed).padStart(7)}  ${w(c.worst_residual, c.unit)}${c.failed ? ` (${w(c.worst_failing_residual, c.unit)})` : ""}`);
     }
     if (r.audit.worst.length) {
       lines.push("worst failing items:");

@@ -54,6 +54,19 @@ function inflow1990(r: string, product: string): number {
   return total;
 }
 
+/** The share of a product's first commodity (steel in buildings, aluminium in packaging) in its expected apparent consumption in a year. */
+function mixShare(r: string, product: string, year: number): number {
+  const p = PRODUCTS.find((x) => x.name === product)!;
+  const mass = p.commodities.map(([code, factor]) => {
+    const c = COMMODITIES.find((x) => x.code === code)!;
+    const unit = c.unit === "kt" ? 1000 : 1;
+    const g = Math.pow(1 + c.growth, year - FIRST_YEAR);
+    const imports = REGIONS.filter((e) => e !== r).reduce((acc, e) => acc + (c.base[e]! * c.tradeShare) / 4, 0);
+    return factor * unit * g * (c.base[r]! * (1 - c.tradeShare) + imports);
+  });
+  return mass[0]! / (mass[0]! + mass[1]!);
+}
+
 /** The lifetime of the demo's cohorts before 2006 (as in lifetimes.csv). */
 function lifetimeOf(r: string, product: string): { distribution: string; mean: number; sd?: number } {
   if (product === "vehicles") return { distribution: "weibull", mean: 14, sd: 5 };
@@ -138,22 +151,30 @@ export function generateDemo(dir: string, seed = 20261201): void {
     ",machinery,,,gamma,25,8,,",
     ",packaging,,,exponential,1.2,,,",
   ];
+  // Content by cohort: vehicles change their mix in 2006 (less steel, more aluminium; 1 % of the
+  // later cars' mass is in materials not tracked); buildings and packaging take each region's
+  // mix of the commodities that make them (so the stock's materials agree with apparent
+  // consumption's), as in 1997 for cohorts up to 2005 and as in 2015 after.
   const content = [
     "region,product,material,first_cohort,last_cohort,content",
-    ",vehicles,steel,,2005,0.69",
-    ",vehicles,steel,2006,,0.61",
-    ",vehicles,aluminium,,2005,0.09",
-    ",vehicles,aluminium,2006,,0.16",
+    ",vehicles,steel,,2005,0.67",
+    ",vehicles,steel,2006,,0.63",
+    ",vehicles,aluminium,,2005,0.11",
+    ",vehicles,aluminium,2006,,0.14",
     ",vehicles,plastics,,,0.18",
     ",vehicles,copper,,,0.04",
-    ",buildings,steel,,,0.16",
-    ",buildings,cement,,,0.84",
     ",machinery,steel,,,0.7",
     ",machinery,copper,,,0.1",
     ",machinery,aluminium,,,0.2",
-    ",packaging,aluminium,,,0.35",
-    ",packaging,plastics,,,0.65",
   ];
+  for (const r of REGIONS) {
+    for (const [product, a, b] of [["buildings", "steel", "cement"], ["packaging", "aluminium", "plastics"]] as const) {
+      const early = mixShare(r, product, 1997);
+      const late = mixShare(r, product, 2015);
+      content.push(`${r},${product},${a},,2005,${early.toFixed(3)}`, `${r},${product},${b},,2005,${(1 - early).toFixed(3)}`);
+      content.push(`${r},${product},${a},2006,,${late.toFixed(3)}`, `${r},${product},${b},2006,,${(1 - late).toFixed(3)}`);
+    }
+  }
   const popBase: Record<string, number> = { ALD: 9.5e6, BRV: 6.1e6, COR: 7.4e6, DUN: 1.9e6, EST: 1.2e6 };
   const popGrowth: Record<string, number> = { ALD: 0.001, BRV: 0.004, COR: 0.009, DUN: -0.004, EST: 0.002 };
   // The stock in place at the end of 1989, by age: what the 1990 inflow, grown back at each

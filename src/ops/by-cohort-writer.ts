@@ -79,7 +79,7 @@ export class ByCohortWriter {
       { name: "inflow", kind: "f64", data: this.inflow }, { name: "outflow", kind: "f64", data: this.outflow }, { name: "stock", kind: "f64", data: this.stock },
     ], this.used, { keepOrder: false }); // copied out with ORDER BY
     const file = path.join(this.outDir, `part-${String(this.part).padStart(5, "0")}.parquet`);
-    await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(r.ci + ${this.y0} AS INTEGER) AS cohort, CAST(r.yi + ${this.y0} AS INTEGER) AS year,
+    await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(r.ci + ${this.y0} AS BIGINT) AS cohort, CAST(r.yi + ${this.y0} AS BIGINT) AS year,
         r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit
       FROM ${ident(tmp)} r JOIN ${ident(this.sidTable)} m USING (sid) ORDER BY r.sid, r.ci, r.yi)
       TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880)`);
@@ -98,7 +98,7 @@ export class ByCohortWriter {
     await this.flush();
     const single = path.join(this.runDir, `${this.table}.parquet`);
     if (this.files.length === 0) {
-      await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS INTEGER) AS cohort, CAST(NULL AS INTEGER) AS year, CAST(NULL AS DOUBLE) AS inflow,
+      await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS BIGINT) AS cohort, CAST(NULL AS BIGINT) AS year, CAST(NULL AS DOUBLE) AS inflow,
           CAST(NULL AS DOUBLE) AS outflow, CAST(NULL AS DOUBLE) AS stock, ${lit(this.unit)} AS unit FROM ${ident(this.sidTable)} m WHERE FALSE)
         TO ${lit(single)} (FORMAT parquet, COMPRESSION zstd)`);
       rmSync(this.outDir, { recursive: true, force: true });

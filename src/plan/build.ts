@@ -99,6 +99,13 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
         },
       };
       const outputs = await kind.outputs(ctx, step as never);
+      const pub = step.publish;
+      if (pub && typeof pub === "object") {
+        const main = outputs.find((o) => o.role === "main")!;
+        const cols = main.columns.map((c) => c.name);
+        const bad = pub.partition_by.filter((c) => !cols.includes(c));
+        if (bad.length) ctx.fail("publish", `partition_by ${bad.join(", ")}: not ${bad.length > 1 ? "columns" : "a column"} of ${main.name} (its columns: ${cols.join(", ")})`);
+      }
       for (const o of outputs) {
         if (o.name.startsWith(INTERNAL_PREFIX) || (RESERVED_NAMES as readonly string[]).includes(o.name)) {
           throw new PipelineError(`${at("id")}: step ${step.id} would produce the table ${JSON.stringify(o.name)}, a name reserved for the tool's own tables and files (${RESERVED_NAMES.join(", ")}, and names starting with ${INTERNAL_PREFIX}); choose another id`);

@@ -8,7 +8,7 @@
 import { Session } from "../engine/session.js";
 import { Exact } from "../engine/sql.js";
 import { AuditLog } from "../audit/log.js";
-import { checkColumns, fileColumns, initRejects, loadSource, sourceFiles } from "../sources/load.js";
+import { checkColumns, checkNotEmpty, fileColumns, initRejects, loadSource, sourceFiles } from "../sources/load.js";
 import type { StepContext, TableInfo } from "../steps/types.js";
 import type { LoadedPipeline } from "../spec/load.js";
 import { buildPlan } from "../plan/build.js";
@@ -47,6 +47,7 @@ export async function checkPipeline(lp: LoadedPipeline): Promise<CheckReport> {
     for (const node of plan.sources) {
       const { files, format } = await sourceFiles(s, node.name, node.source, lp.dir);
       await checkColumns(s, node.name, node.source, files, format);
+      await checkNotEmpty(s, node.name, node.source, files, format);
       const entry: CheckReport["sources"][number] = { name: node.name, files: files.length, columns: await fileColumns(s, node.source, files, format), config: node.config };
       if (node.config) {
         // Small tables are read whole, with the same rules (and reject limits) as in a run.

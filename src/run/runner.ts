@@ -218,7 +218,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     });
     return await finish("ok");
   } catch (e) {
-    if (!(e instanceof CairnError) && /out of range|Conversion Error/i.test(String((e as Error).message)) && /INT64|BIGINT|round/i.test(String((e as Error).message))) {
+    if (!(e instanceof CairnError) && /Type DOUBLE with value .* can't be cast because the value is out of range for the destination type INT64/i.test(String((e as Error).message))) {
       e = new DataError(`a quantity too large to sum exactly (one value above ${ctx.exact.maxValue.toExponential(1)} ${lp.pipeline.base_unit}; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
     }
     e = resourceFailure(e, resources) ?? e;

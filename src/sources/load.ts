@@ -3,7 +3,7 @@
  * unit-converted in SQL. Rows that break the declared types or constraints go to the rejects
  * table with file, row and reason; nothing is dropped silently.
  */
-import { existsSync, statSync } from "node:fs";
+import { closeSync, existsSync, openSync, readSync, statSync } from "node:fs";
 import path from "node:path";
 import { DataError, PipelineError, firstLines, resourceFailure } from "../errors.js";
 import { InputWatch } from "./verify.js";
@@ -86,19 +86,82 @@ function csvArgs(src: SourceT, header: boolean): string {
   ].join(", ");
 }
 
+/**
+ * The columns of a CSV source as written in its header (or, without a header, as declared),
+ * read here rather than sniffed: DuckDB's sniffer gives up on a whole file for one bad line (an
+ * unterminated quote), where a read with the dialect and columns given rejects that line.
+ */
+export function csvHeader(src: SourceT, files: string[]): string[] {
+  const header = src.csv?.header ?? true;
+  if (!header) return Object.keys(src.columns);
+  const delim = src.csv?.delimiter ?? ",";
+  const quote = src.csv?.quote ?? '"';
+  const names: string[][] = files.map((f) => {
+    const fd = openSync(f, "r");
+    const buf = Buffer.alloc(1 << 16);
+    let n: number;
+    try {
+      n = readSync(fd, buf, 0, buf.length, 0);
+    } finally {
+      closeSync(fd);
+    }
+    const text = buf.subarray(0, n).toString("utf8").replace(/^\uFEFF/, "");
+    const out: string[] = [];
+    let cur = "";
+    let inQ = false;
+    for (let i = 0; i < text.length; i++) {
+      const ch = text[i]!;
+      if (inQ) {
+        if (ch === quote && text[i + 1] === quote) { cur += quote; i++; }
+        else if (ch === quote) inQ = false;
+        else cur += ch;
+      } else if (ch === quote) inQ = true;
+      else if (text.startsWith(delim, i)) { out.push(cur.trim()); cur = ""; i += delim.length - 1; }
+      else if (ch === "\n" || ch === "\r") break;
+      else cur += ch;
+    }
+    out.push(cur.trim());
+    return out;
+  });
+  const first = names[0]!;
+  names.forEach((h, i) => {
+    if (h.join("\u0000") !== first.join("\u0000")) {
+      throw new DataError(`${files[i]}: its header (${h.join(", ")}) differs from that of ${files[0]} (${first.join(", ")}); the files of one source must have the same columns`);
+    }
+  });
+  return first;
+}
+
 function readExpr(src: SourceT, files: string[], format: "csv" | "parquet", extra = ""): string {
   const list = `[${files.map(lit).join(", ")}]`;
   if (format === "parquet") {
     return `read_parquet(${list}, filename = '__file', file_row_number = true, hive_partitioning = ${src.hive ? "true" : "false"}, union_by_name = true)`;
   }
   const header = src.csv?.header ?? true;
-  return `read_csv(${list}, ${csvArgs(src, header)}${extra})`;
+  const cols = csvHeader(src, files);
+  const seen = new Map<string, number>();
+  const unique = cols.map((c) => {
+    const k = seen.get(c) ?? 0;
+    seen.set(c, k + 1);
+    return k ? `${c}_${k}` : c || `column${seen.size - 1}`;
+  });
+  const columns = `auto_detect = false, columns = {${unique.map((c) => `${lit(c)}: 'VARCHAR'`).join(", ")}}`;
+  return `read_csv(${list}, ${csvArgs(src, header)}, ${columns}${extra.replace(/, names = \[[^\]]*\]/, "")})`;
 }
 
 /** The columns of the files, before rename, as DuckDB sees them. */
 export async function fileColumns(s: Session, src: SourceT, files: string[], format: "csv" | "parquet"): Promise<string[]> {
   const cols = await s.all(`DESCRIBE SELECT * FROM ${readExpr(src, files, format, format === "csv" ? ", ignore_errors = true" : "")}`);
   return cols.map((c) => String(c.column_name)).filter((c) => c !== "__file" && c !== "file_row_number");
+}
+
+/** For `check`: a source with no data rows (a header at most) is an error, as in a run, unless allow_empty. */
+export async function checkNotEmpty(s: Session, name: string, src: SourceT, files: string[], format: "csv" | "parquet"): Promise<void> {
+  if (src.allow_empty) return;
+  const rows = await s.all(`SELECT 1 AS x FROM ${readExpr(src, files, format, format === "csv" ? ", ignore_errors = true" : "")} LIMIT 1`);
+  if (rows.length === 0) {
+    throw new DataError(`source ${name}: ${files.length === 1 ? files[0] : `the ${files.length} files of ${src.path}`} ${files.length === 1 ? "has" : "have"} no data rows (a header at most); give data, or set allow_empty: true on the source if an empty table is expected`);
+  }
 }
 
 /** Checks that every declared column exists (after rename); returns the rename map file→table. */
@@ -246,7 +309,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
       const c = String(d.column_name);
       if (c === "__file" || c === "file_row_number") continue;
       const to = src.rename?.[c] ?? c;
-      types.set(to, format === "csv" ? "VARCHAR" : String(d.column_type));
+      types.set(to, String(d.column_type)); // CSV file columns are VARCHAR (all_varchar); hive folder keys keep their type
       parts.push(`${ident(c)} AS ${ident(to)}`);
     }
     const rowExpr = format === "parquet" ? "file_row_number + 1" : numbered ? "row_number() OVER (PARTITION BY __file)" : "CAST(NULL AS BIGINT)";
@@ -389,7 +452,14 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     await s.run(`CREATE OR REPLACE VIEW ${ident(locatedView(name))} AS SELECT ${idents(outCols)}, __file, ${line} AS __line, ${lit(format === "csv" ? "line" : "row")} AS __line_kind
       FROM ${ident(checkedT)} WHERE ${cleanSelect ? "TRUE" : "__reason IS NULL"} ${filter}`);
   }
-  const loaded = src.filter ? Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`)) : okRows;
+  let loaded = okRows;
+  if (src.filter) {
+    try {
+      loaded = Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`));
+    } catch (e) {
+      throw resourceFailure(e) ?? new DataError(`sources.${name}.filter: ${JSON.stringify(src.filter)} fails on the data of ${files.length === 1 ? files[0] : src.path}: ${firstLines(String((e as Error).message))}`);
+    }
+  }
   await s.run(`DROP TABLE IF EXISTS ${ident(csvRejT)}; DROP TABLE IF EXISTS ${ident(csvScanT)}`);
   const limits = { ...(pipeline.rejects ?? {}), ...(src.rejects ?? {}) };
   const maxRows = limits.max_rows ?? (limits.max_share === undefined ? 0 : Infinity);
@@ -407,7 +477,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     const ex = await s.all(`SELECT file, "row", line, "column", value, reason FROM ${REJECTS_TABLE} WHERE source = ${lit(name)} ORDER BY file, "row" LIMIT 5`);
     const lines = ex.map((r) => `  ${r.file}:${r.line != null ? `line ${r.line}` : `row ${r.row}`}: column ${r.column || "?"}, value ${JSON.stringify(r.value)}: ${r.reason}`);
     const err = new DataError(
-      `source ${name}: ${rejected} of ${rows_read} rows rejected (${pct(rejected, rows_read)}), above the limit (max_rows ${maxRows === Infinity ? "none" : maxRows}, max_share ${maxShare}); first rejects:\n${lines.join("\n")}\n` +
+      `source ${name}: ${rejected} of ${rows_read} rows rejected (${pct(rejected, rows_read)}), above the limit (${limits.max_rows === undefined && limits.max_share === undefined ? "by default no rejected row is tolerated" : `max_rows ${maxRows === Infinity ? "not set" : maxRows}, max_share ${limits.max_share ?? "not set"}`}); first rejects:\n${lines.join("\n")}\n` +
         `  (all rejects are in rejects.parquet; raise sources.${name}.rejects or the pipeline's rejects: to tolerate them)`,
     );
     (err as DataError & { source?: SourceResult }).source = result;

@@ -65,6 +65,7 @@ export const AuditOptions = z
     below_zero_threshold: z.number().min(0).max(1).default(0.05),
     beyond_horizon_threshold: z.number().min(0).max(1).default(0.05),
     lifetime_severity: Severity.default("warning"),
+    content_severity: Severity.default("error").describe("severity of content-total: a cohort's content summed over materials above 1 (more material than product mass)"),
   })
   .strict();
 

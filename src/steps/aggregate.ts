@@ -42,6 +42,8 @@ export const aggregateStep = defineStep({
     const missing = hasColumns(input, values);
     if (missing.length) ctx.fail("values", `table ${o.input} lacks value column(s) ${missing.join(", ")}`);
     if (!values.length) ctx.fail("values", `table ${o.input} has no DOUBLE column to sum; name the columns in values`);
+    const notNumbers = input.columns.filter((c) => values.includes(c.name) && !/^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT|UBIGINT|UINTEGER|USMALLINT|UTINYINT)$/.test(c.type));
+    if (notNumbers.length) ctx.fail("values", `${notNumbers.map((c) => `${c.name} (${c.type})`).join(", ")} cannot be summed; values are numeric columns`);
     return [{ name: o.id, role: "main", description: `${o.input} summed over the groups of ${o.by} in ${o.groups}`, keys, columns: sel }];
   },
   async check(ctx, o) {
@@ -78,10 +80,11 @@ export const aggregateStep = defineStep({
     }
     await ctx.audits.check({
       step: o.id, check: "aggregate-ungrouped", severity: "warning", unit: "rows",
-      items: `SELECT ${keyMap([o.by])} AS keys, NULL AS year, count(*) AS observed, 0 AS expected, 0 AS tolerance,
-        ${lit(`${o.by} `)} || CAST(${ident(o.by)} AS VARCHAR) || ' belongs to no group in ' || ${lit(o.groups)} || ' (' || count(*) || ' rows not in any group total)' AS message
-        FROM ${ident(o.input)} i WHERE CAST(i.${ident(o.by)} AS VARCHAR) NOT IN (SELECT CAST(member AS VARCHAR) FROM ${ident(o.groups)}) GROUP BY ${ident(o.by)}`,
-      failWhen: "TRUE",
+      items: `SELECT ${keyMap([o.by])} AS keys, NULL AS year, CASE WHEN bool_or(g.member IS NULL) THEN count(*) ELSE 0 END AS observed, 0 AS expected, 0 AS tolerance,
+        ${lit(`${o.by} `)} || CAST(i.${ident(o.by)} AS VARCHAR) || ' belongs to no group in ' || ${lit(o.groups)} || ' (' || count(*) || ' rows not in any group total)' AS message
+        FROM ${ident(o.input)} i LEFT JOIN (SELECT DISTINCT CAST(member AS VARCHAR) AS member FROM ${ident(o.groups)}) g ON g.member = CAST(i.${ident(o.by)} AS VARCHAR)
+        GROUP BY i.${ident(o.by)}`,
+      failWhen: "observed > 0",
       failMessage: "member in no group",
     });
   },

@@ -28,6 +28,8 @@ export const sqlStep = defineStep({
   async outputs(ctx, o) {
     const got = await ctx.bind(o.query, o.inputs, "query");
     const names = got.map((c) => c.name);
+    const twice = names.filter((n, i) => names.indexOf(n) !== i);
+    if (twice.length) ctx.fail("query", `the query returns the column ${[...new Set(twice)].join(", ")} more than once; give each output column its own name (… AS name)`);
     if (names.join(",") !== o.columns.join(",")) {
       ctx.fail("columns", `the query returns the columns ${names.join(", ")}; declared: ${o.columns.join(", ")} (declare exactly the query's columns, in order)`);
     }

@@ -15,6 +15,7 @@ import { describeSeries } from "../ops/param-match.js";
 import { isMassUnit, massFactor, PIECE } from "../units.js";
 import { defineStep, type ColumnDecl, type OutputDecl, type TableSchema } from "./types.js";
 import { hasColumns, keyFrom, unitColumn, year } from "./columns.js";
+import { raise, rowsWhere } from "../ops/config-table.js";
 
 const Options = z.object({
   input: Name.describe("anchor values: keys…, year, value columns (one row per series and anchor year)"),
@@ -75,8 +76,18 @@ export const yearlyPathStep = defineStep({
     const { keys } = layout(input, o);
     const dup = await s.all(`SELECT ${idents(keys)}${keys.length ? "," : ""} year, count(*) AS n FROM ${ident(o.input)} GROUP BY ALL HAVING count(*) > 1 ORDER BY ALL LIMIT 5`);
     if (dup.length) throw new DataError(`step ${o.id}: table ${o.input} gives several anchors for one series and year, e.g. ${dup.map((d) => JSON.stringify(d)).join("; ")}`);
-    const nulls = await s.all(`SELECT ${idents(keys)}${keys.length ? "," : ""} year FROM ${ident(o.input)} WHERE year IS NULL LIMIT 1`);
-    if (nulls.length) throw new DataError(`step ${o.id}: table ${o.input} has an anchor without a year (${JSON.stringify(nulls[0])})`);
+    const { values } = layout(input, o);
+    raise(o.id, `anchors table ${o.input} has empty cells`, await rowsWhere(ctx, o.input, [`year IS NULL`, ...values.map((v) => `${ident(v)} IS NULL OR NOT isfinite(CAST(${ident(v)} AS DOUBLE))`)].join(" OR "),
+      `'an anchor needs a year and a finite value in ' || ${lit(values.join(", "))}`));
+    if (o.years) {
+      // Years outside a series' anchors, when they are not to be held: known from the anchors alone.
+      const span = await s.all(`SELECT ${keys.length ? keys.map((k) => `CAST(${ident(k)} AS VARCHAR) AS ${ident(k)}`).join(", ") + "," : ""} min(year) AS y0, max(year) AS y1 FROM ${ident(o.input)} GROUP BY ALL ORDER BY ALL`);
+      for (const r of span) {
+        const name = keys.length ? describeSeries(keys, keys.map((k) => String(r[k]))) : "(the only series)";
+        if (o.before === "error" && o.years.first < Number(r.y0)) throw new DataError(`step ${o.id}: series ${name} has its first anchor in ${r.y0}, after the path's first year ${o.years.first}; add an anchor or set before: hold`);
+        if (o.after === "error" && o.years.last > Number(r.y1)) throw new DataError(`step ${o.id}: series ${name} has its last anchor in ${r.y1}, before the path's last year ${o.years.last}; add an anchor or set after: hold`);
+      }
+    }
   },
   async run(ctx, o) {
     const s = ctx.session;
@@ -136,6 +147,8 @@ export const yearlyPathStep = defineStep({
       const gap = await s.all(`SELECT ${d.keys.map((k) => `m.${ident(k)}`).join(", ")}${d.keys.length ? "," : ""} r.year FROM ${ident(raw)} r JOIN ${sid} m USING (sid)
         ANTI JOIN ${ident(d.table)} p ON ${dk.map((k) => (k === "year" ? "p.year = r.year" : `p.${ident(k)} = m.${ident(k)}`)).join(" AND ")} ORDER BY ALL LIMIT 3`);
       if (gap.length) throw new DataError(`step ${o.id}: the driver ${d.table} has no ${d.column} for ${gap.map((g) => JSON.stringify(g)).join("; ")}; it must cover every series and year of the path`);
+      const empty = await s.all(`SELECT ${dk.map((k) => `CAST(${ident(k)} AS VARCHAR) AS ${ident(k)}`).join(", ")} FROM ${ident(d.table)} WHERE ${ident(d.column)} IS NULL OR NOT isfinite(CAST(${ident(d.column)} AS DOUBLE)) LIMIT 3`);
+      if (empty.length) throw new DataError(`step ${o.id}: the driver ${d.table} has an empty or non-finite ${d.column} for ${empty.map((g) => JSON.stringify(g)).join("; ")}; every series and year of the path needs a value`);
       const dupD = await s.all(`SELECT ${idents(dk)}, count(*) AS n FROM ${ident(d.table)} GROUP BY ALL HAVING count(*) > 1 LIMIT 1`);
       if (dupD.length) throw new DataError(`step ${o.id}: the driver ${d.table} has several rows for ${JSON.stringify(dupD[0])}`);
     }

@@ -150,7 +150,14 @@ describe("cohort-model step", () => {
     const mats = await q(`SELECT DISTINCT material FROM '$OUT/m_materials.parquet' ORDER BY 1`);
     expect(mats.map((x) => x.material)).toEqual(["aluminium", "cement", "steel"]);
     const houseMat = await q(`SELECT count(*) AS n FROM '$OUT/m_materials.parquet' WHERE product = 'houses' AND material = 'steel'`);
-    expect(houseMat[0]!.n).toBe(60); // two house series; zero steel content, but every series has every material
+    expect(houseMat[0]!.n).toBe(0); // houses hold no steel (no content row for it): no rows of zeros
+    const carMat = await q(`SELECT count(*) AS n FROM '$OUT/m_materials.parquet' WHERE product = 'cars'`);
+    expect(carMat[0]!.n).toBe(2 * 2 * 30); // two car series × steel and aluminium × 30 years
+    // The stock in place carries its content too: A/cars in 2000 holds the initial cohorts' steel (0.7 per t, cohorts ≤ 2014).
+    const stocks = await q(`SELECT material, stock - stock_change AS before FROM '$OUT/m_materials.parquet' WHERE region = 'A' AND product = 'cars' AND year = 2000 ORDER BY 1`);
+    expect(stocks.map((x) => x.material)).toEqual(["aluminium", "steel"]);
+    expect(Number(stocks[1]!.before)).toBeCloseTo(35 * 0.7, 9); // 35 t in place at the end of 1999 × 0.7
+    expect(Number(stocks[0]!.before)).toBeCloseTo(35 * 0.1, 9);
     // Model cohorts (T(T + 1)/2 rows per series) plus the initial stock's cohorts (T rows per age held).
     const byc = await q(`SELECT count(*) AS n, count(*) FILTER (WHERE cohort < 2000) AS init FROM '$OUT/m_by_cohort.parquet'`);
     expect(byc[0]!.n).toBe(4 * (30 * 31) / 2 + 4 * 30);

@@ -21,7 +21,16 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
       'negative stock ' || stock || ' ${u}' AS message FROM ${ident(o.id)}`,
     failWhen: "observed < -tolerance", failMessage: "negative stock",
   });
-  if (o.mode === "inflow-driven") {
+  if (o.mode === "inflow-driven" && o.negative_inflow === "clamp") {
+    await ctx.audits.fromItems({
+      step: o.id, check: "negative-inflow", severity: a.negative_severity, items: n * inp.T, worst: 0,
+      failing: inp.clamped.map((c) => ({
+        keys: Object.fromEntries(o.keys.map((k, i) => [k, inp.keyValues[Math.floor(c.at / inp.T)]![i]!])), year: y0 + (c.at % inp.T),
+        observed: c.value, expected: 0, tolerance: 0,
+        message: `negative inflow ${fmt(c.value)} ${u} (e.g. re-exports beyond production and imports) set to 0: it does not enter the stock (negative_inflow: clamp)`,
+      })),
+    });
+  } else if (o.mode === "inflow-driven") {
     await ctx.audits.check({
       step: o.id, check: "negative-inflow", severity: a.negative_severity,
       items: `SELECT ${keyMap(o.keys)} AS keys, year, least(inflow, 0.0) AS observed, 0.0 AS expected, 0.0 AS tolerance, 'negative inflow ' || inflow || ' ${u} (e.g. negative apparent consumption) enters the stock as given' AS message FROM ${ident(o.id)}`,
@@ -30,9 +39,10 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
     if (inp.missing.length) {
       await ctx.audits.check({
         step: o.id, check: "coverage", severity: "warning",
-        items: `SELECT ${keyMap(o.keys, "m")} AS keys, y AS year, 0.0 AS observed, NULL AS expected, 0.0 AS tolerance, 'no inflow row for this series-year; taken as 0' AS message
-          FROM ${sidT} m CROSS JOIN range(${y0}, ${y1 + 1}) r(y) ANTI JOIN ${ident(o.input)} i ON ${o.keys.map((k) => `i.${ident(k)} = m.${ident(k)}`).join(" AND ")} AND i.year = r.y`,
-        failWhen: "TRUE", failMessage: "missing series-year",
+        unit: "rows",
+        items: `SELECT ${keyMap(o.keys, "m")} AS keys, y AS year, CASE WHEN i.year IS NULL THEN 1.0 ELSE 0.0 END AS observed, 0.0 AS expected, 0.0 AS tolerance, 'no inflow row for this series-year; taken as 0' AS message
+          FROM ${sidT} m CROSS JOIN range(${y0}, ${y1 + 1}) r(y) LEFT JOIN ${ident(o.input)} i ON ${o.keys.map((k) => `i.${ident(k)} = m.${ident(k)}`).join(" AND ")} AND i.year = r.y`,
+        failWhen: "observed > 0", failMessage: "missing series-year",
       });
     }
   } else {
@@ -64,25 +74,24 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
       failMessage: "achieved stock differs from the stock path",
     });
   }
+  const keysOf = (values: string[]) => Object.fromEntries(o.keys.map((k, i) => [k, values[i]!]));
   if (inp.init) {
-    const old: string[] = [];
-    for (let sid = 0; sid < n; sid++) if (res.tooOld[sid]! > 0) old.push(`${describeSeries(o.keys, inp.keyValues[sid]!)} (${res.tooOld[sid]} ${u})`);
-    await ctx.audits.note(o.id, "initial-stock-age", "warning", old.length ? "fail" : "pass",
-      old.length ? `stock in place older than its lifetime distribution allows leaves in ${y0}: ${old.slice(0, 10).join("; ")}${old.length > 10 ? ` and ${old.length - 10} more series` : ""}` : `${n} series checked`,
-      { items: n, failed: old.length });
+    const failing = [];
+    for (let sid = 0; sid < n; sid++) if (res.tooOld[sid]! > 0) {
+      failing.push({ keys: keysOf(inp.keyValues[sid]!), year: y0, observed: res.tooOld[sid]!, expected: 0, tolerance: 0,
+        message: `${fmt(res.tooOld[sid]!)} ${u} of the stock in place is older than its lifetime distribution allows and leaves in ${y0}` });
+    }
+    await ctx.audits.fromItems({ step: o.id, check: "initial-stock-age", severity: "warning", items: n, worst: 0, failing });
   }
   if (inp.carried) {
     const c = inp.carried;
-    const lost = c.orphans.map((j) => {
+    const failing = c.orphans.map((j) => {
       let left = 0;
       for (let a2 = 0; a2 < c.stock.A; a2++) left += c.stock.amounts[j * c.stock.A + a2]!;
-      return `${describeSeries(o.keys, c.stock.keyValues[j]!)} (${left} ${u})`;
+      return { keys: keysOf(c.stock.keyValues[j]!), year: c.stock.year, observed: left, expected: 0, tolerance: 0,
+        message: `${fmt(left)} ${u} in use at the end of ${c.stock.year} in step ${c.stock.step}, but the series is not in ${o.input}: its stock would vanish` };
     });
-    await ctx.audits.note(o.id, "continuation-coverage", "error", lost.length ? "fail" : "pass",
-      lost.length
-        ? `series of step ${c.stock.step} with stock at the end of ${c.stock.year} are not in ${o.input}, so their stock would vanish: ${lost.slice(0, 10).join("; ")}${lost.length > 10 ? ` and ${lost.length - 10} more` : ""}`
-        : `every series of step ${c.stock.step} with stock at the end of ${c.stock.year} continues`,
-      { items: c.stock.keyValues.length, failed: lost.length });
+    await ctx.audits.fromItems({ step: o.id, check: "continuation-coverage", severity: "error", items: c.stock.keyValues.length, worst: 0, failing });
   }
   void raw;
 }
@@ -110,8 +119,8 @@ export async function lifetimeAudits(ctx: StepContext, o: O, ltMeta: string, T: 
   await ctx.audits.check({
     step: o.id, check: "lifetime-beyond-horizon", severity: a.lifetime_severity, unit: "1",
     items: `SELECT MAP(['lifetime_row'], [CAST(lifetime_row AS VARCHAR)]) AS keys, NULL AS year, survival AS observed, 0.0 AS expected, ${a.beyond_horizon_threshold} AS tolerance,
-      'lifetime row ' || lifetime_row || ': ' || round(100 * survival, 2) || ' % of a cohort entering in ${y0} is still in stock at the end of ${y1}; its outflow falls beyond the horizon' AS message
-      FROM ${ident(`${o.id}_lifetimes`)} WHERE age = ${T - 1}`,
+      'lifetime row ' || lifetime_row || ': ' || round(100 * survival, 2) || ' % of a cohort entering in ' || greatest(coalesce(first_cohort, ${y0}), ${y0}) || ' is still in stock at the end of ${y1}; its outflow falls beyond the horizon' AS message
+      FROM ${ident(`${o.id}_lifetimes`)} WHERE age = ${y1} - greatest(coalesce(first_cohort, ${y0}), ${y0}) AND coalesce(first_cohort, ${y0}) <= ${y1}`,
     failMessage: "mass beyond the horizon",
   });
 }
@@ -120,6 +129,16 @@ export async function materialAudits(ctx: StepContext, o: O, inp: Inputs, res: R
   const a = ctx.pipeline.audit;
   const sidT = ident(sidTable(o));
   await balanceCheck(ctx, o.id, `${o.id}_materials`, [...o.keys, "material"], "materials-balance", Boolean(inp.init || inp.carried));
+  if (inp.unit !== "piece") {
+    const u = inp.unit;
+    await ctx.audits.fromItems({
+      step: o.id, check: "content-total", severity: ctx.pipeline.audit.content_severity, unit: "1", items: res.contentTotals.items, worst: 0,
+      failing: res.contentTotals.failing.map((f) => ({
+        keys: Object.fromEntries(o.keys.map((k, i) => [k, inp.keyValues[f.sid]![i]!])), year: f.cohort, observed: f.total, expected: 1, tolerance: 1e-9,
+        message: `the content of cohort ${f.cohort} sums to ${fmt(f.total)} ${u} of materials per ${u} of product: more material than the product's own mass (content table ${o.content})`,
+      })),
+    });
+  }
   // Σ over materials = the model run once with the summed content, cohorts in place included (linearity of the model).
   await ctx.audits.check({
     step: o.id, check: "materials-total", severity: "error",
@@ -160,3 +179,8 @@ export async function byCohortAudit(ctx: StepContext, o: O, inp: Inputs, raw: st
 }
 
 export { lit };
+
+/** A number for a message: up to 10 significant digits, no float noise. */
+export function fmt(x: number): string {
+  return String(Number(x.toPrecision(10)));
+}

@@ -35,6 +35,10 @@ export interface Results {
   /** (n·M) × T material flows, and the Σ-content check (n × T), or null without content. */
   mat: { inflow: Float64Array; outflow: Float64Array; stock: Float64Array; stockChange: Float64Array; sumCheck: Float64Array } | null;
   hasContent: Uint8Array;
+  /** n × M: the series holds the material (only those rows are published). */
+  holds: Uint8Array;
+  /** Content per unit of product summed over materials, per series and cohort: at most 1 where the product is a mass. */
+  contentTotals: { items: number; failing: { sid: number; cohort: number; total: number }[] };
   byCohort: ByCohortWriter | null;
 }
 
@@ -68,7 +72,7 @@ export async function compute(ctx: StepContext, o: O, inp: Inputs, groups: Group
     unmet: o.mode === "stock-driven" && o.negative_inflow === "clamp" ? new Float64Array(n * T) : null,
     tooOld: new Float64Array(n), materials,
     mat: M ? { inflow: new Float64Array(n * M * T), outflow: new Float64Array(n * M * T), stock: new Float64Array(n * M * T), stockChange: new Float64Array(n * M * T), sumCheck: new Float64Array(n * T) } : null,
-    hasContent: new Uint8Array(n), byCohort: null,
+    hasContent: new Uint8Array(n), holds: new Uint8Array(n * M), contentTotals: { items: 0, failing: [] }, byCohort: null,
   };
   const keep = ctx.carry.wanted.has(o.id);
   const state: CohortState | null = keep
@@ -172,9 +176,25 @@ function composeGroup(o: O, inp: Inputs, x: { g: Group; group: CohortGroup; gn: 
   const rm = composition(group, r.inflow, gn, gc.content, M, initMat);
   const rsum = composition(group, r.inflow, gn, gc.total, 1, initSum);
   const mat = res.mat!;
+  // Content summed over materials: a cohort cannot hold more material than its own mass.
+  if (inp.unit !== "piece") {
+    g.sids.forEach((sid, j) => {
+      if (!gc.has[j]) return;
+      for (let c = 0; c < T; c++) {
+        res.contentTotals.items++;
+        if (gc.total[j * T + c]! > 1 + 1e-9) res.contentTotals.failing.push({ sid, cohort: inp.y0 + c, total: gc.total[j * T + c]! });
+      }
+      for (let a = 0; a < A; a++) {
+        if (!amounts || amounts[j * A + a] === 0) continue;
+        res.contentTotals.items++;
+        if (gc.initTotal[j * A + a]! > 1 + 1e-9) res.contentTotals.failing.push({ sid, cohort: inp.y0 - 1 - a, total: gc.initTotal[j * A + a]! });
+      }
+    });
+  }
   g.sids.forEach((sid, j) => {
     if (!gc.has[j]) return;
     res.hasContent[sid] = 1;
+    res.holds.set(gc.holds.subarray(j * M, (j + 1) * M), sid * M);
     for (let m = 0; m < M; m++) {
       const from = (j * M + m) * T;
       const to = (sid * M + m) * T;

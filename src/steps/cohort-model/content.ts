@@ -23,6 +23,8 @@ export interface GroupContent {
   initTotal: Float64Array;
   /** Per series of the group: has content rows (or carried content). */
   has: Uint8Array;
+  /** gn × M: the series holds the material (a content row for it, or carried content). */
+  holds: Uint8Array;
 }
 
 /** `amounts`: the group's stock in place by age (gn × A), or null; content is needed only where there is stock. */
@@ -33,7 +35,7 @@ export function groupContent(o: O, inp: Inputs, g: Group, A: number, materials: 
   const gn = g.sids.length;
   const out: GroupContent = {
     content: new Float64Array(gn * M * T), total: new Float64Array(gn * T),
-    initContent: new Float64Array(gn * M * A), initTotal: new Float64Array(gn * A), has: new Uint8Array(gn),
+    initContent: new Float64Array(gn * M * A), initTotal: new Float64Array(gn * A), has: new Uint8Array(gn), holds: new Uint8Array(gn * M),
   };
   const carried = inp.carried;
   g.sids.forEach((sid, j) => {
@@ -56,6 +58,8 @@ export function groupContent(o: O, inp: Inputs, g: Group, A: number, materials: 
       return Number(p.raw.content);
     };
     for (let mi = 0; mi < M; mi++) {
+      if (byMaterial[mi]!.length > 0) out.holds[j * M + mi] = 1;
+      else if (carriedHas && carried!.stock.materials.includes(materials[mi]!)) out.holds[j * M + mi] = 1;
       for (let c = 0; c < T; c++) {
         const x = contentAt(mi, y0 + c, "");
         out.content[(j * M + mi) * T + c] = x;

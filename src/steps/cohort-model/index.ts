@@ -38,8 +38,12 @@ export const cohortModelStep = defineStep({
   outputs(ctx, step) {
     const o = step as O;
     const input = ctx.schemaOf(o.input, "input");
-    const missing = hasColumns(input, [...o.keys, "year", o.value]);
-    if (missing.length) ctx.fail("input", `table ${o.input} lacks column(s) ${missing.join(", ")}; it has ${input.columns.map((c) => c.name).join(", ")}`);
+    const has = input.columns.map((c) => c.name).join(", ");
+    if (o.keys.includes("year")) ctx.fail("keys", "year is not a series key: every series runs over the years (give the other keys, e.g. [region, product])");
+    const missingKeys = hasColumns(input, o.keys);
+    if (missingKeys.length) ctx.fail("keys", `table ${o.input} has no column(s) ${missingKeys.join(", ")}; it has ${has}`);
+    if (hasColumns(input, ["year"]).length) ctx.fail("input", `table ${o.input} lacks column(s) year; it has ${has}`);
+    if (hasColumns(input, [o.value]).length) ctx.fail("value", `table ${o.input} has no column ${o.value}${o.value === "value" ? " (the default)" : ""}; it has ${has}`);
     checkParamColumns(ctx, o, o.lifetimes, "lifetimes", LIFETIME_COLUMNS, ["distribution"]);
     if (o.curves) {
       const c = hasColumns(ctx.schemaOf(o.curves, "curves"), ["curve", "age", "survival"]);
@@ -85,7 +89,7 @@ export const cohortModelStep = defineStep({
     } else if (o.content) {
       // A content table with no material rows at all: an empty materials table, and the coverage audit.
       await s.run(`CREATE OR REPLACE TABLE ${ident(`${o.id}_materials`)} AS SELECT ${o.keys.map((k) => `m.${ident(k)}`).join(", ")}, CAST(NULL AS VARCHAR) AS material,
-        CAST(NULL AS INTEGER) AS year, 0.0 AS inflow, 0.0 AS outflow, 0.0 AS stock, 0.0 AS stock_change, CAST(NULL AS VARCHAR) AS unit FROM ${ident(sidTable(o))} m WHERE FALSE`);
+        CAST(NULL AS BIGINT) AS year, 0.0 AS inflow, 0.0 AS outflow, 0.0 AS stock, 0.0 AS stock_change, CAST(NULL AS VARCHAR) AS unit FROM ${ident(sidTable(o))} m WHERE FALSE`);
       await ctx.audits.note(o.id, "materials-coverage", "warning", "fail", `the content table ${o.content} has no rows: ${o.id}_materials is empty`, { items: inp.n, failed: inp.n });
     }
     if (res.byCohort) {

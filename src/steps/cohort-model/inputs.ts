@@ -23,6 +23,8 @@ export interface Inputs {
   value: Float64Array;
   /** Indices (sid·T + t) of missing series-years. */
   missing: number[];
+  /** Inflow-driven with negative_inflow: clamp: the negative inflows set to 0 (index sid·T + t, value). */
+  clamped: { at: number; value: number }[];
   /** The stock in place: by age per series, or the total per series (steady-state ages). */
   init: { byAge: Float64Array | null; total: Float64Array | null; A: number } | null;
   /** A continued model's stock, and each series' index in it (−1: not in the earlier model). */
@@ -72,7 +74,14 @@ export async function readInputs(ctx: StepContext, o: O): Promise<Inputs> {
     const i = missing[0]!;
     throw new DataError(`step ${o.id}: the stock path of series ${describeSeries(o.keys, keyValues[Math.floor(i / T)]!)} has no value for ${y0 + (i % T)} (${missing.length} series-years missing); a stock-driven model needs every year`);
   }
-  const base = { unit, y0, y1, T, n, keyValues, value, missing };
+  const clamped: { at: number; value: number }[] = [];
+  if (o.mode === "inflow-driven" && o.negative_inflow === "clamp") {
+    for (let i = 0; i < n * T; i++) if (value[i]! < 0) {
+      clamped.push({ at: i, value: value[i]! });
+      value[i] = 0;
+    }
+  }
+  const base = { unit, y0, y1, T, n, keyValues, value, missing, clamped };
   if (o.continues) return { ...base, init: null, carried: carried(ctx, o, base) };
   return { ...base, init: o.initial_stock ? await initialStock(s, ctx, o, n) : null, carried: null };
 }

@@ -20,7 +20,7 @@ export const Options = z.object({
     .describe("start from the end state of an earlier cohort-model step: every cohort's remaining amount, its own lifetime and its own material content"),
   content: Name.optional().describe("table: key columns (empty = any), material, first_cohort, last_cohort, content (material per unit of product)"),
   by_cohort: z.boolean().default(false).describe("also produce <id>_by_cohort (adds cohort)"),
-  negative_inflow: z.enum(["keep", "clamp"]).default("keep").describe("stock-driven: keep negative inflow (flagged) or clamp it to 0 and report the unmet stock change"),
+  negative_inflow: z.enum(["keep", "clamp"]).default("keep").describe("negative inflow: keep it (flagged), or clamp it to 0 (inflow-driven: the negative amount does not enter the stock and is reported; stock-driven: the unmet stock change is reported)"),
   indicators: z.boolean().default(true).describe("mean age of the stock and of the outflow per series-year"),
   convention: z.enum(["midpoint"]).default("midpoint").describe("discrete-time convention (DOMAIN: items enter mid-year)"),
 });

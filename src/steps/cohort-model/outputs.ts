@@ -12,7 +12,7 @@ import { sidTable, type Inputs } from "./inputs.js";
 import type { O } from "./options.js";
 import type { ParamRow } from "./params.js";
 
-const cohortYear = (name: string, description: string): ColumnDecl => ({ name, type: "INTEGER", unit: "year", description });
+const cohortYear = (name: string, description: string): ColumnDecl => ({ name, type: "BIGINT", unit: "year", description });
 
 export function declareOutputs(ctx: PlanContext, o: O): OutputDecl[] {
   const input = ctx.schemaOf(o.input, "input");
@@ -92,7 +92,7 @@ export async function writeTables(ctx: StepContext, o: O, inp: Inputs, res: Resu
   const nanToNull = (c: string) => `CASE WHEN isnan(r.${c}) THEN NULL ELSE r.${c} END AS ${c}`;
   const extra = o.mode === "stock-driven" ? `, r.given AS stock_target${res.unmet ? ", r.unmet_stock_change" : ""}, r.inflow < 0 AS negative_inflow` : "";
   await s.run(`CREATE OR REPLACE TABLE ${ident(o.id)} AS
-    SELECT ${keysOf("m")}, CAST(r.yi + ${y0} AS INTEGER) AS year, r.inflow, r.outflow, r.stock, r.stock_change, ${lit(inp.unit)} AS unit
+    SELECT ${keysOf("m")}, CAST(r.yi + ${y0} AS BIGINT) AS year, r.inflow, r.outflow, r.stock, r.stock_change, ${lit(inp.unit)} AS unit
       ${o.indicators ? `, ${nanToNull("mean_age_stock")}, ${nanToNull("mean_age_outflow")}` : ""}${extra}
     FROM ${ident(raw)} r JOIN ${sidT} m USING (sid) ORDER BY ${keysOf("m")}, year`);
   if (!res.mat) return { raw, sumRaw: null, withContent: null, matRaw: null };
@@ -118,11 +118,18 @@ export async function writeTables(ctx: StepContext, o: O, inp: Inputs, res: Resu
   const withContent = `__${o.id}_hascontent`;
   const has = [...res.hasContent.keys()].filter((i) => res.hasContent[i]);
   await writeColumns(s, withContent, [{ name: "sid", kind: "i32", data: Int32Array.from(has) }], has.length);
+  // Only the materials a series holds (a content row for it): no rows of zeros for impossible pairs.
+  const held = `__${o.id}_held`;
+  const hs: number[] = [];
+  const hm: number[] = [];
+  for (let x = 0; x < n; x++) for (let m = 0; m < M; m++) if (res.holds[x * M + m]) { hs.push(x); hm.push(m); }
+  await writeColumns(s, held, [{ name: "sid", kind: "i32", data: Int32Array.from(hs) }, { name: "mi", kind: "i32", data: Int32Array.from(hm) }], hs.length);
   const matUnit = inp.unit === "piece" ? ctx.pipeline.base_unit : inp.unit;
   await s.run(`CREATE OR REPLACE TABLE ${ident(`${o.id}_materials`)} AS
-    SELECT ${keysOf("m")}, n.material, CAST(r.yi + ${y0} AS INTEGER) AS year, r.inflow, r.outflow, r.stock, r.stock_change, ${lit(matUnit)} AS unit
-    FROM ${ident(matRaw)} r JOIN ${sidT} m USING (sid) JOIN ${ident(matNames)} n USING (mi) SEMI JOIN ${ident(withContent)} h USING (sid)
+    SELECT ${keysOf("m")}, n.material, CAST(r.yi + ${y0} AS BIGINT) AS year, r.inflow, r.outflow, r.stock, r.stock_change, ${lit(matUnit)} AS unit
+    FROM ${ident(matRaw)} r JOIN ${sidT} m USING (sid) JOIN ${ident(matNames)} n USING (mi) SEMI JOIN ${ident(held)} h USING (sid, mi)
     ORDER BY ${keysOf("m")}, n.material, year`);
+  await s.run(`DROP TABLE ${ident(held)}`);
   const sumRaw = `__${o.id}_sumraw`;
   await writeColumns(s, sumRaw, [{ name: "sid", kind: "i32", data: sid }, { name: "yi", kind: "i32", data: yi }, { name: "stock", kind: "f64", data: res.mat.sumCheck }], n * T);
   await s.run(`DROP TABLE ${ident(matNames)}`);
@@ -149,7 +156,7 @@ export async function writeLifetimes(ctx: StepContext, o: O, used: [number, Curv
   ], ltRows.length);
   const ltMeta = `__${o.id}_ltmeta`;
   await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(ltMeta)} (row INTEGER, lifetime_row INTEGER, ${keyCols.map((k) => `${ident(k)} VARCHAR`).join(", ")}${keyCols.length ? "," : ""}
-    first_cohort INTEGER, last_cohort INTEGER, distribution VARCHAR, mean DOUBLE, sd DOUBLE, shape DOUBLE, scale DOUBLE, curve VARCHAR, true_mean DOUBLE, below_zero DOUBLE)`);
+    first_cohort BIGINT, last_cohort BIGINT, distribution VARCHAR, mean DOUBLE, sd DOUBLE, shape DOUBLE, scale DOUBLE, curve VARCHAR, true_mean DOUBLE, below_zero DOUBLE)`);
   const v = (x: unknown) => (x === null || x === undefined || x === "" ? "NULL" : lit(Number(x)));
   for (const [idx, c] of used) {
     const r = rows[idx]!.raw;
