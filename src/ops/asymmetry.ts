@@ -38,7 +38,7 @@ export interface AsymmetryItems {
 /** The audit items from pairs `p` (importer, exporter, commodity, year, m = imports, x = exports). */
 const itemsOf = (threshold: number) => `SELECT MAP(['importer', 'exporter', 'commodity'], [importer, exporter, commodity]) AS keys, year,
       m AS observed, x AS expected, ${threshold} * greatest(abs(m), abs(x)) AS tolerance,
-      'imports reported by ' || importer || ' from ' || exporter || ' (' || m || ') differ from the exports reported by ' || exporter || ' (' || x || ') by more than ' || ${lit(String(threshold * 100))} || ' %' AS message
+      'imports reported by ' || importer || ' from ' || exporter || ' (' || printf('%.10g', m) || ') differ from the exports reported by ' || exporter || ' (' || printf('%.10g', x) || ') by more than ' || ${lit(String(threshold * 100))} || ' %' AS message
     FROM p`;
 
 /** The general way: one group per (importer, exporter, commodity, year), any number of reports in each. */

@@ -4,7 +4,7 @@
  * codes listed with their mass, never dropped. Shared by the `concordance` and
  * `apparent-consumption` step kinds. The input may be a view: it is scanned, never copied.
  */
-import { duplicateKeys, invertedRanges, raise, rowsWhere, type Problem } from "./config-table.js";
+import { duplicateKeys, invertedRanges, locatedRelation, raise, rowsWhere, type Problem } from "./config-table.js";
 import { ident, idents, keyMap, lit } from "../engine/sql.js";
 import type { StepContext } from "../steps/types.js";
 
@@ -61,18 +61,20 @@ export async function checkConcordanceRows(ctx: StepContext, step: string, table
     tv ? { first: has("first_year") ? "first_year" : null, last: has("last_year") ? "last_year" : null } : undefined));
   // Shares: evaluated at every year where the rows of a commodity change (piecewise constant between).
   const share = has("share") ? "coalesce(CAST(share AS DOUBLE), 1.0)" : "1.0";
+  const located = await locatedRelation(ctx, table);
   const rel = `(SELECT CAST(commodity AS VARCHAR) AS commodity, ${share} AS share, ${has("unit_mass") ? "CAST(unit_mass AS DOUBLE)" : "NULL::DOUBLE"} AS unit_mass,
-      CAST(${first} AS BIGINT) AS f, CAST(${last} AS BIGINT) AS l FROM ${ident(table)})`;
+      CAST(${first} AS BIGINT) AS f, CAST(${last} AS BIGINT) AS l, __where FROM ${located})`;
   const bad = await ctx.session.all(`WITH r AS ${rel},
     pts AS (SELECT DISTINCT commodity, f AS y FROM r UNION SELECT DISTINCT commodity, l + 1 FROM r WHERE l IS NOT NULL UNION SELECT DISTINCT commodity, NULL FROM r),
-    cov AS (SELECT p.commodity, p.y, sum(r.share) AS total, count(*) AS n, min(r.unit_mass) AS um0, max(r.unit_mass) AS um1
+    cov AS (SELECT p.commodity, p.y, sum(r.share) AS total, count(*) AS n, min(r.unit_mass) AS um0, max(r.unit_mass) AS um1, string_agg(r.__where, '; ' ORDER BY r.__where) AS rows
       FROM pts p JOIN r ON r.commodity = p.commodity AND (CASE WHEN p.y IS NULL THEN r.f IS NULL ELSE (r.f IS NULL OR r.f <= p.y) AND (r.l IS NULL OR r.l >= p.y) END)
       GROUP BY ALL)
-    SELECT commodity, y, total, um0, um1 FROM cov WHERE abs(total - 1) > ${tol} OR um0 <> um1 ORDER BY commodity, y NULLS FIRST LIMIT 20`);
+    SELECT commodity, y, total, um0, um1, rows FROM cov WHERE abs(total - 1) > ${tol} OR um0 <> um1 ORDER BY commodity, y NULLS FIRST LIMIT 20`);
   raise(step, `concordance table ${table}: every commodity's shares must sum to 1 (± ${tol}, audit option share_tolerance) in each year, with one unit_mass`,
     bad.map((b) => ({
-      where: `commodity ${b.commodity}${tv ? (b.y == null ? ", years before any first_year" : `, from ${b.y}`) : ""}`,
-      message: Math.abs(Number(b.total) - 1) > tol ? `shares sum to ${Number(Number(b.total).toPrecision(12))}` : `unit_mass differs between rows (${b.um0} .. ${b.um1})`,
+      where: `commodity ${b.commodity}${tv && has("first_year") ? (b.y == null ? ", years before any first_year" : `, from ${b.y}`) : ""} (${b.rows})`,
+      message: Math.abs(Number(b.total) - 1) > tol ? `shares sum to ${Number(Number(b.total).toPrecision(12))}`
+        : `unit_mass differs between rows (${Number(b.um0)} .. ${Number(b.um1)} ${ctx.pipeline.base_unit} per piece, after conversion from the source's unit)`,
     })));
 }
 

@@ -122,6 +122,46 @@ function keysAt(schema: z.ZodType, p: readonly PathKey[]): string[] {
   return u?._zod?.def?.type === "object" ? Object.keys(u._zod.def.shape) : [];
 }
 
+/** The schema found by following `p` inside `schema` (through optionals, defaults, objects, arrays, records). */
+function schemaAt(schema: z.ZodType, p: readonly PathKey[]): any {
+  let cur: any = schema;
+  const unwrap = (x: any) => {
+    for (let g = 0; g < 10 && x; g++) {
+      const t = x?._zod?.def?.type;
+      if (t === "optional" || t === "default" || t === "nullable" || t === "prefault") x = x._zod.def.innerType;
+      else if (t === "pipe") x = x._zod.def.in;
+      else break;
+    }
+    return x;
+  };
+  for (const k of p) {
+    cur = unwrap(cur);
+    const t = cur?._zod?.def?.type;
+    if (t === "object") cur = cur._zod.def.shape[k as string];
+    else if (t === "array") cur = cur._zod.def.element;
+    else if (t === "record") cur = cur._zod.def.valueType;
+    else if (t === "union") cur = cur._zod.def.options.find((o: any) => ["object", "array", "record"].includes(unwrap(o)?._zod?.def?.type));
+    else return undefined;
+  }
+  return unwrap(cur);
+}
+
+/** What a schema accepts, in words: "a mapping with keys a, b", "one of x, y", "a number", … */
+function accepted(sc: any): string {
+  const t = sc?._zod?.def?.type;
+  if (t === "union") return sc._zod.def.options.map(accepted).join("; or ");
+  if (t === "enum") return `one of ${Object.values(sc._zod.def.entries).map((v) => JSON.stringify(v)).join(", ")}`;
+  if (t === "literal") return sc._zod.def.values.map((v: unknown) => JSON.stringify(v)).join(" or ");
+  if (t === "object") return `a mapping with keys ${Object.keys(sc._zod.def.shape).join(", ")}`;
+  if (t === "array") return "a list";
+  if (t === "record") return "a mapping";
+  if (t === "boolean") return "true or false";
+  if (t === "number") return "a number";
+  if (t === "string") return "a text";
+  if (t === "optional" || t === "default" || t === "nullable") return accepted(sc._zod.def.innerType);
+  return "a value of the documented form";
+}
+
 function describeIssue(issue: z.core.$ZodIssue, data: unknown, schema: z.ZodType, base: readonly PathKey[], loc: Locator): string[] {
   const p = [...base, ...(issue.path as PathKey[])];
   if (issue.code === "unrecognized_keys") {
@@ -136,6 +176,14 @@ function describeIssue(issue: z.core.$ZodIssue, data: unknown, schema: z.ZodType
   if (issue.code === "invalid_value" && "values" in issue) {
     const near = typeof value === "string" ? closest(value, issue.values.map(String)) : undefined;
     msg = `got ${show(value)}; accepted: ${issue.values.map((v) => show(v)).join(", ")}${near ? ` (did you mean ${show(near)}?)` : ""}`;
+  } else if (issue.code === "invalid_union") {
+    const sc = schemaAt(schema, issue.path as PathKey[]);
+    const near = typeof value === "string" && sc?._zod?.def?.type === "union"
+      ? closest(value, sc._zod.def.options.flatMap((o: any) => (o?._zod?.def?.type === "enum" ? Object.values(o._zod.def.entries).map(String) : [])))
+      : undefined;
+    msg = `got ${show(value)}; accepted: ${sc ? accepted(sc) : "see the README"}${near ? ` (did you mean ${show(near)}?)` : ""}`;
+  } else if (issue.code === "too_small" && (issue as { origin?: string }).origin === "array") {
+    msg = `needs at least ${(issue as { minimum?: number | bigint }).minimum} item(s)${value !== undefined ? ` (got ${show(value)})` : ""}`;
   } else if (issue.code === "invalid_type") {
     msg = value === undefined ? `missing (expected ${issue.expected})` : `expected ${issue.expected}, got ${show(value)}`;
   } else if (value !== undefined && typeof value !== "object") {

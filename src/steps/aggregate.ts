@@ -73,7 +73,7 @@ export const aggregateStep = defineStep({
           o AS (SELECT CAST(${ident(o.by)} AS VARCHAR) AS grp, ${restKeys.map(ident).join(", ")}${restKeys.length ? "," : ""} ${ctx.exact.sum(ident(v))} AS x
             FROM ${ident(o.id)} WHERE CAST(${ident(o.by)} AS VARCHAR) IN (SELECT CAST("group" AS VARCHAR) FROM ${ident(o.groups)}) GROUP BY ALL)
           SELECT ${keyMap([...restKeys.filter((k) => k !== "year")])} AS keys, ${restKeys.includes("year") ? "year" : "NULL"} AS year, o.x AS observed, m.x AS expected,
-            ${ctx.pipeline.audit.conservation_rtol} * abs(m.x) + ${ctx.pipeline.audit.balance_atol} AS tolerance, 'group ' || grp || ': total ' || o.x || ' ≠ sum of members ' || m.x AS message
+            ${ctx.pipeline.audit.conservation_rtol} * abs(m.x) + ${ctx.pipeline.audit.balance_atol} AS tolerance, 'group ' || grp || ': total ' || printf('%.10g', o.x) || ' ≠ sum of members ' || printf('%.10g', m.x) AS message
           FROM m JOIN o USING (grp${restKeys.length ? ", " + idents(restKeys) : ""})`,
         failMessage: "group total differs from the sum of its members",
       });

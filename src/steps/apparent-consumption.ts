@@ -166,7 +166,7 @@ export const apparentConsumptionStep = defineStep({
     await ctx.audits.check({
       step: id, check: "negative-consumption", severity: a.negative_severity,
       items: `SELECT ${keyMap(keys)} AS keys, year, least(consumption, 0.0) AS observed, 0.0 AS expected, 0.0 AS tolerance,
-        'negative apparent consumption ' || consumption || ' ${ctx.pipeline.base_unit} (production ' || production || ', imports ' || imports || ', exports ' || exports || ')' ||
+        'negative apparent consumption ' || printf('%.10g', consumption) || ' ${ctx.pipeline.base_unit} (production ' || printf('%.10g', production) || ', imports ' || printf('%.10g', imports) || ', exports ' || printf('%.10g', exports) || ')' ||
         ${lit(o.negative === "zero" ? "; set to 0 (negative: zero)" : o.negative === "flag" ? "; kept, negative = true" : "; kept")} AS message
         FROM ${T("raw")}`,
       failWhen: "observed < 0",

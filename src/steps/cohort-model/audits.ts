@@ -18,7 +18,7 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
   await ctx.audits.check({
     step: o.id, check: "stock-sign", severity: "error",
     items: `SELECT ${keyMap(o.keys)} AS keys, year, least(stock, 0.0) AS observed, 0.0 AS expected, ${a.balance_atol} AS tolerance,
-      'negative stock ' || stock || ' ${u}' AS message FROM ${ident(o.id)}`,
+      'negative stock ' || printf('%.10g', stock) || ' ${u}' AS message FROM ${ident(o.id)}`,
     failWhen: "observed < -tolerance", failMessage: "negative stock",
   });
   if (o.mode === "inflow-driven" && o.negative_inflow === "clamp") {
@@ -33,7 +33,7 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
   } else if (o.mode === "inflow-driven") {
     await ctx.audits.check({
       step: o.id, check: "negative-inflow", severity: a.negative_severity,
-      items: `SELECT ${keyMap(o.keys)} AS keys, year, least(inflow, 0.0) AS observed, 0.0 AS expected, 0.0 AS tolerance, 'negative inflow ' || inflow || ' ${u} (e.g. negative apparent consumption) enters the stock as given' AS message FROM ${ident(o.id)}`,
+      items: `SELECT ${keyMap(o.keys)} AS keys, year, least(inflow, 0.0) AS observed, 0.0 AS expected, 0.0 AS tolerance, 'negative inflow ' || printf('%.10g', inflow) || ' ${u} (e.g. negative apparent consumption) enters the stock as given' AS message FROM ${ident(o.id)}`,
       failWhen: "observed < 0", failMessage: "negative inflow",
     });
     if (inp.missing.length) {
@@ -50,20 +50,20 @@ export async function modelAudits(ctx: StepContext, o: O, inp: Inputs, res: Resu
       ? {
         step: o.id, check: "negative-inflow", severity: a.negative_severity,
         items: `SELECT ${keyMap(o.keys)} AS keys, year, unmet_stock_change AS observed, 0.0 AS expected, ${a.balance_atol} AS tolerance,
-            'inflow clamped to 0: the stock stays ' || (-unmet_stock_change) || ' ${u} above its path' AS message FROM ${ident(o.id)}`,
+            'inflow clamped to 0: the stock stays ' || printf('%.10g', -unmet_stock_change) || ' ${u} above its path' AS message FROM ${ident(o.id)}`,
         failMessage: "negative inflow clamped",
       }
       : {
         step: o.id, check: "negative-inflow", severity: a.negative_severity,
         items: `SELECT ${keyMap(o.keys)} AS keys, year, least(inflow, 0.0) AS observed, 0.0 AS expected, 0.0 AS tolerance,
-            'negative inflow ' || inflow || ' ${u} needed to follow the falling stock path (kept; negative_inflow = true)' AS message FROM ${ident(o.id)}`,
+            'negative inflow ' || printf('%.10g', inflow) || ' ${u} needed to follow the falling stock path (kept; negative_inflow = true)' AS message FROM ${ident(o.id)}`,
         failWhen: "observed < 0", failMessage: "negative inflow",
       });
     if (!inPlace) {
       await ctx.audits.check({
         step: o.id, check: "first-year-spike", severity: "warning",
         items: `SELECT ${keyMap(o.keys)} AS keys, year, stock_target AS observed, 0.0 AS expected, 0.0 AS tolerance,
-          'the stock path starts at ' || stock_target || ' ${u} with no stock in place: the whole stock enters as first-year inflow (a spike); give initial_stock or continues' AS message
+          'the stock path starts at ' || printf('%.10g', stock_target) || ' ${u} with no stock in place: the whole stock enters as first-year inflow (a spike); give initial_stock or continues' AS message
           FROM ${ident(o.id)} WHERE year = ${y0}`,
         failWhen: "observed > 0", failMessage: "first-year inflow spike",
       });
