@@ -5,29 +5,8 @@ import { runPipeline, type RunReport } from "../run/runner.js";
 import { Progress } from "../run/progress.js";
 import { collect, fail, parsePath, parseSize, parseThreads } from "./common.js";
 
-export function printReport(r: RunReport): string {
-  const lines: string[] = [];
-  lines.push(r.status === "ok" ? `run complete: ${r.run_dir}` : `run FAILED (exit ${r.exit_code}); kept for inspection: ${r.run_dir}`);
-  if (r.error) lines.push(r.error);
-  for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rows_loaded} rows loaded, ${s.rows_rejected} rejected, ${s.rows_filtered} filtered out`);
-  for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
-  if (r.audit) {
-    lines.push(`audit: ${r.audit.errors} error item(s), ${r.audit.warnings} warning item(s) failed`);
-    const w = (x: number | null, u: string | null) => (x == null ? "-" : `${Number(x.toPrecision(3))}${u && u !== "1" ? ` ${u}` : ""}`);
-    const sw = Math.max(4, ...r.audit.checks.map((c) => c.step.length));
-    const cw = Math.max(5, ...r.audit.checks.map((c) => c.check.length));
-    lines.push(`  ${"step".padEnd(sw)} ${"check".padEnd(cw)} ${"severity".padEnd(8)} ${"status".padEnd(6)} ${"items".padStart(8)} ${"failed".padStart(7)}  worst |residual| (failing)`);
-    for (const c of r.audit.checks) {
-      lines.push(`  ${c.step.padEnd(sw)} ${c.check.padEnd(cw)} ${c.severity.padEnd(8)} ${(c.status === "fail" ? "FAIL" : "pass").padEnd(6)} ${String(c.items).padStart(8)} ${String(c.failed).padStart(7)}  ${w(c.worst_residual, c.unit)}${c.failed ? ` (${w(c.worst_failing_residual, c.unit)})` : ""}`);
-    }
-    if (r.audit.worst.length) {
-      lines.push("worst failing items:");
-      for (const x of r.audit.worst) lines.push(`  ${x.step} ${x.check} ${JSON.stringify(x.keys)}${x.year != null ? ` ${x.year}` : ""}: ${x.message}`);
-    }
-  }
-  lines.push("Results are estimates; see the manifest's method and caution before publishing.");
-  return lines.join("\n") + "\n";
-}
+import { reportText as printReport } from "../run/report-text.js";
+export { printReport };
 
 export function registerRun(program: Command): void {
   program
@@ -42,13 +21,21 @@ export function registerRun(program: Command): void {
     .option("--threads <n>", "DuckDB threads, 1 to 1024 (default: all cores)", parseThreads)
     .option("--memory-limit <size>", "DuckDB memory limit, e.g. 6GB; beyond it DuckDB spills to disk", parseSize)
     .option("--temp-dir <dir>", "where DuckDB spills (default: inside the staging directory)", parsePath)
-    .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string }) => {
+    .option("--release <id>", "publish as this release into the catalog (--catalog, or catalog: in the pipeline file)")
+    .option("--catalog <dir>", "the catalog folder of releases", parsePath)
+    .option("--provisional", "mark the release provisional", false)
+    .option("--against <dir>", "compare with this run directory (revisions) instead of the catalog's latest release", parsePath)
+    .option("--reuse-from <dir>", "take unchanged steps from this run directory (default: the previous release)", parsePath)
+    .option("--no-reuse", "compute every step, even those unchanged since the previous run")
+    .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string;
+      release?: string; catalog?: string; provisional: boolean; against?: string; reuseFrom?: string; reuse: boolean }) => {
       let report: RunReport;
       try {
         const lp = loadPipeline(file, parseSet(o.set));
         report = await runPipeline(lp, {
           out: o.out, replace: o.replace, progress: Progress.forTerminal(o.quiet || o.json),
           threads: o.threads, memoryLimit: o.memoryLimit, tempDirectory: o.tempDir,
+          release: o.release, catalog: o.catalog, provisional: o.provisional, against: o.against, reuseFrom: o.reuseFrom, reuse: o.reuse,
         });
       } catch (e) {
         fail(e, o.json, exitCodeOf(e));

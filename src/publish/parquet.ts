@@ -1,6 +1,6 @@
 /** Parquet writers (zstd, fixed row order) and output hashing. */
 import { createHash } from "node:crypto";
-import { readdirSync, readFileSync, statSync } from "node:fs";
+import { mkdirSync, readdirSync, readFileSync, statSync } from "node:fs";
 import path from "node:path";
 import type { Session } from "../engine/session.js";
 import { ident, idents, lit } from "../engine/sql.js";
@@ -38,6 +38,7 @@ export async function writeParquet(s: Session, opts: { table: string; sql?: stri
   }
   const rel = opts.partitionBy?.length ? opts.name : `${opts.name}.parquet`;
   const target = path.join(opts.dir, rel);
+  mkdirSync(path.dirname(target), { recursive: true });
   const part = opts.partitionBy?.length ? `, PARTITION_BY (${idents(opts.partitionBy)}), OVERWRITE_OR_IGNORE true` : "";
   await s.run(`COPY (${query}) TO ${lit(target)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880${part})`);
   const files = opts.partitionBy?.length ? walk(target) : [target];

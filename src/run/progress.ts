@@ -1,13 +1,20 @@
 /** Progress on stderr: shown on a terminal, silent otherwise or with --quiet. */
 export class Progress {
   private readonly t0 = Date.now();
+  private readonly lines: string[] = [];
   constructor(readonly enabled: boolean) {}
+
+  /** Every message so far, each with its UTC time (run.log). */
+  log(): string {
+    return this.lines.join("\n");
+  }
 
   static forTerminal(quiet: boolean): Progress {
     return new Progress(!quiet && Boolean(process.stderr.isTTY));
   }
 
   info(msg: string): void {
+    this.lines.push(`${new Date().toISOString()} ${msg}`);
     if (this.enabled) process.stderr.write(`[${((Date.now() - this.t0) / 1000).toFixed(1)}s] ${msg}\n`);
   }
 

@@ -1,27 +1,34 @@
 /**
- * Runs a loaded pipeline: the plan (the same checks as `cairn check`), the sources, the checks
- * of the small tables, the steps in order with their audits, then publishing into the run
- * directory. The runner knows no step kind: each declares its outputs in the plan.
+ * Runs a loaded pipeline: the plan (the same checks as `cairn check`), the target and its lock,
+ * the inputs hashed and fingerprinted, the steps that can be taken from a previous run, the
+ * sources the others need, the checks of the small tables, the steps in order with their
+ * audits, revisions against the previous release, then publishing into the run directory (and,
+ * for a release, the catalog's index). The runner knows no step kind: each declares its outputs.
  */
 import { writeFileSync } from "node:fs";
 import path from "node:path";
 import { createRequire } from "node:module";
-import { AuditFailure, CairnError, DataError, InputChanged, ResourceError, exitCodeOf, resourceFailure, firstLines } from "../errors.js";
+import { AuditFailure, CairnError, DataError, InputChanged, PipelineError, ResourceError, exitCodeOf, resourceFailure, firstLines } from "../errors.js";
 import { Session, type SessionOptions } from "../engine/session.js";
-import { Exact, ident, lit } from "../engine/sql.js";
+import { Exact } from "../engine/sql.js";
 import { AuditLog, AUDIT_TABLE, type AuditSummary } from "../audit/log.js";
-import { initRejects, loadSource, REJECTS_TABLE, type InputFile, type SourceResult } from "../sources/load.js";
+import { initRejects, REJECTS_TABLE, sourceFiles, type InputFile, type SourceResult } from "../sources/load.js";
 import type { RunSettings, StepContext, TableInfo } from "../steps/types.js";
 import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
 import { checkTarget, RunDir } from "../publish/rundir.js";
 import { InputWatch } from "../sources/verify.js";
-import { fault } from "./fault.js";
 import { Progress } from "./progress.js";
 import { massFactor } from "../units.js";
 import { METHOD_NOTE, CAUTION } from "./method.js";
 import { buildPlan, type Plan, type StepNode } from "../plan/build.js";
+import { fingerprints, type NodePrint } from "../plan/fingerprint.js";
 import { CarryStore } from "../steps/cohort-model/carry.js";
+import { Catalog, type ReleaseEntry } from "../publish/catalog.js";
+import { readPrevious, reusableSteps, type PreviousRun } from "./reuse.js";
+import { loadSources, reuseStep, runStep } from "./steps.js";
+import { publishRevisions } from "./revise.js";
+import { reportText } from "./report-text.js";
 
 const require = createRequire(import.meta.url);
 export const TOOL_VERSION: string = (require("../../package.json") as { version: string }).version;
@@ -33,17 +40,31 @@ export interface RunOptions extends SessionOptions {
   /** Base folder for runs without --out (default: the current directory). */
   cwd?: string;
   settings?: Partial<RunSettings>;
+  /** Publish as release ID into the catalog (`catalog` option, or the pipeline file's `catalog:`). */
+  release?: string;
+  catalog?: string;
+  /** Mark the release provisional (exports give OBS_STATUS P). */
+  provisional?: boolean;
+  /** A run directory to compare with (revisions), instead of the catalog's latest release. */
+  against?: string;
+  /** A run directory whose unchanged steps are taken over (default: the previous release). */
+  reuseFrom?: string;
+  /** Take over unchanged steps (default true when a previous run is known). */
+  reuse?: boolean;
 }
 
-export type SourceReport = Omit<SourceResult, "files">;
+export type SourceReport = Omit<SourceResult, "files"> & { fingerprint?: string; method_fingerprint?: string; reused?: boolean };
 
 export interface RunReport {
   status: "ok" | "failed";
   exit_code: number;
   error?: string;
   run_dir: string;
+  release?: string;
   outputs: OutputFile[];
   sources: SourceReport[];
+  reused: string[];
+  revisions: { table: string; rows: number }[];
   rejects: number;
   audit: AuditSummary | null;
   timings_s: Record<string, number>;
@@ -58,194 +79,16 @@ export function defaultRunDir(lp: LoadedPipeline, cwd = process.cwd(), now = new
 }
 
 export function defaultSettings(): RunSettings {
-  return { poolMinCells: Number(process.env.CAIRN_POOL_MIN_CELLS ?? 2e8) };
+  const v = process.env.CAIRN_POOL_MIN_CELLS;
+  if (v !== undefined && !(Number(v) >= 0)) throw new PipelineError(`CAIRN_POOL_MIN_CELLS=${JSON.stringify(v)}: expected a number of cells ≥ 0`);
+  return { poolMinCells: Number(v ?? 2e8) };
 }
 
-const continuesOf = (n: StepNode): string | undefined => (n.step as { continues?: { step: string } }).continues?.step;
-
-/** Steps that a later step continues (they keep their end state in memory). */
-function continuedSteps(plan: Plan): Set<string> {
-  const out = new Set<string>();
-  for (const n of plan.steps) {
-    const c = (n.step as { continues?: { step: string } }).continues;
-    if (c) out.add(c.step);
-  }
-  return out;
-}
+export const continuesOf = (n: StepNode): string | undefined => (n.step as { continues?: { step: string } }).continues?.step;
 
 /** Internal table names never reach users: DuckDB's messages name them, so they are replaced. */
 export function cleanMessage(m: string): string {
   return m.replace(/"?__[A-Za-z0-9_]+"?/g, "an internal table");
-}
-
-export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Promise<RunReport> {
-  const progress = opts.progress ?? new Progress(false);
-  const started = new Date();
-  // The plan first: a file that is not a valid pipeline stops here (exit 2), before anything is written.
-  const plan = await buildPlan(lp);
-  const out = opts.out ?? defaultRunDir(lp, opts.cwd, started);
-  // The target: never the current folder, an input's folder or anything but an earlier run (exit 2); then its lock (exit 5).
-  checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd });
-  const rd = new RunDir(out);
-  rd.acquire();
-  let s: Session;
-  try {
-    for (const m of rd.cleanStale()) progress.info(m);
-    checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd }); // again, under the lock
-    rd.create();
-    s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
-  } catch (e) {
-    rd.discard();
-    throw resourceFailure(e, { tempDir: opts.tempDirectory, outDir: out }) ?? e;
-  }
-  const watch = new InputWatch();
-  const resources = { memoryLimit: opts.memoryLimit, tempDir: opts.tempDirectory ?? path.join(rd.staging, ".spill"), outDir: path.resolve(out) };
-  const audits = new AuditLog(s, lp.pipeline.base_unit);
-  const timings: Record<string, number> = {};
-  const tables = new Map<string, TableInfo>();
-  const sources: SourceResult[] = [];
-  const inputs: InputFile[] = [];
-  const streamed = new Map<string, OutputFile[]>();
-  let outputs: (OutputFile & { step?: string; role?: string })[] = [];
-  const t = async <T>(label: string, f: () => Promise<T>): Promise<T> => {
-    const t0 = performance.now();
-    try {
-      return await f();
-    } finally {
-      timings[label] = Number(((performance.now() - t0) / 1000).toFixed(3));
-    }
-  };
-  const ctx: StepContext = {
-    session: s,
-    pipeline: lp.pipeline,
-    exact: new Exact(massFactor(lp.pipeline.base_unit, "g")),
-    dir: lp.dir,
-    outputDir: rd.staging,
-    audits,
-    progress,
-    tables,
-    requireTable(name, option) {
-      const info = tables.get(name);
-      if (!info) throw new Error(`option ${option}: no table ${JSON.stringify(name)} (the plan should have refused this)`);
-      return info;
-    },
-    async columnsOf(name) {
-      return (await s.columns(name)).map((c) => c.name);
-    },
-    streamed(name, files) {
-      streamed.set(name, files);
-    },
-    carry: new CarryStore(continuedSteps(plan)),
-    settings: { ...defaultSettings(), ...opts.settings },
-  };
-
-  const finish = async (status: "ok" | "failed", err?: unknown): Promise<RunReport> => {
-    // Audit table and rejects are always written; tables only on success.
-    outputs.push(...(await writeParquet(s, { table: REJECTS_TABLE, name: "rejects", dir: rd.staging, sql: `SELECT * FROM ${REJECTS_TABLE} ORDER BY source, file, "row", line, "column", reason` })));
-    outputs.push(...(await writeParquet(s, { table: AUDIT_TABLE, name: "audit", dir: rd.staging, sql: audits.orderedSql() })));
-    const summary = await audits.summary();
-    const rejects = Number(await s.scalar(`SELECT count(*) FROM ${REJECTS_TABLE}`));
-    const code = status === "ok" ? 0 : exitCodeOf(err);
-    const message = err ? cleanMessage(String((err as Error).message)) : undefined;
-    const srcReports = sources.map(({ files: _f, ...r }) => r);
-    const manifest = {
-      tool: { name: "cairn", version: TOOL_VERSION },
-      engine: { duckdb: await s.version(), node: process.version },
-      status,
-      exit_code: code,
-      ...(message ? { error: message } : {}),
-      started_at: started.toISOString(),
-      finished_at: new Date().toISOString(),
-      pipeline: { name: lp.pipeline.name, file: lp.file, sha256: lp.sha256, variables: lp.variables, base_unit: lp.pipeline.base_unit },
-      method: METHOD_NOTE,
-      caution: CAUTION,
-      steps: plan.steps.map((n) => ({
-        id: n.id, kind: n.kind.kind, reads: n.reads.map((r) => r.table),
-        ...(continuesOf(n) ? { continues: continuesOf(n) } : {}),
-        outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })),
-      })),
-      inputs,
-      sources: srcReports,
-      outputs,
-      timings_s: timings,
-      rejects,
-      audit: summary,
-    };
-    writeFileSync(path.join(rd.staging, "manifest.json"), JSON.stringify(manifest, null, 2) + "\n");
-    s.close();
-    let dir = path.resolve(out);
-    if (status === "ok") rd.commit(Boolean(opts.replace));
-    else dir = rd.fail();
-    return { status, exit_code: code, ...(message ? { error: message } : {}), run_dir: dir, outputs, sources: srcReports, rejects, audit: summary, timings_s: timings };
-  };
-
-  try {
-    await audits.init();
-    await initRejects(s);
-    await loadSources(ctx, lp, plan, sources, inputs, t, watch);
-    // From here on pipeline SQL runs in a sandbox: no file, database or extension outside the run.
-    await s.sandbox([rd.staging, resources.tempDir], inputs.map((f) => f.path));
-    // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
-    for (const node of plan.steps) await node.kind.check?.(ctx, node.step as never);
-    for (const node of plan.steps) {
-      await runStep(ctx, node, t, streamed);
-      fault(`after-step:${node.id}`);
-      watch.checkStat(`after step ${node.id}`);
-      if (audits.failedErrors.length > 0) {
-        const f = audits.failedErrors;
-        throw new AuditFailure(
-          `step ${node.id}: ${f.length} audit check(s) of severity error failed:\n` +
-            f.map((x) => `  ${x.step} ${x.check}: ${x.failed} item(s) failed, e.g. ${x.example}`).join("\n"),
-        );
-      }
-      progress.info(`step ${node.id}: done in ${timings[`step:${node.id}`]} s`);
-    }
-    fault("before-publish");
-    await t("verify_inputs", () => watch.verifyHashes());
-    await t("publish", async () => {
-      for (const info of tables.values()) {
-        if (!info.step) continue;
-        const role = plan.steps.find((n) => n.id === info.step)!.outputs.find((o) => o.name === info.name)!.role;
-        if (info.publish === false) continue;
-        if (info.files) {
-          outputs.push(...info.files.map((f) => ({ ...f, step: info.step, role })));
-          continue;
-        }
-        progress.info(`publishing ${info.name}`);
-        const written = await writeParquet(s, { table: info.name, keys: info.keys, dir: rd.staging, name: info.name, partitionBy: info.publish.partition_by });
-        outputs.push(...written.map((f) => ({ ...f, step: info.step, role })));
-      }
-    });
-    return await finish("ok");
-  } catch (e) {
-    if (!(e instanceof CairnError) && /Type DOUBLE with value .* can't be cast because the value is out of range for the destination type INT64/i.test(String((e as Error).message))) {
-      e = new DataError(`a quantity too large to sum exactly (one value above ${ctx.exact.maxValue.toExponential(1)} ${lp.pipeline.base_unit}; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
-    }
-    e = resourceFailure(e, resources) ?? e;
-    if (e instanceof DataError || e instanceof AuditFailure || e instanceof ResourceError || e instanceof InputChanged) {
-      try {
-        outputs = [];
-        return await finish("failed", e);
-      } catch (e2) {
-        try {
-          s.close();
-        } catch {
-          /* already closed */
-        }
-        rd.discard();
-        // A second failure while keeping DIR.failed (a full disk, say) does not hide the first.
-        throw e instanceof ResourceError ? e : resourceFailure(e2, resources) ?? e2;
-      }
-    }
-    try {
-      s.close();
-    } catch {
-      /* already closed */
-    }
-    rd.discard();
-    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${cleanMessage(firstLines(e.message))}`;
-    throw e;
-  }
 }
 
 /** Paths a run must never replace: the pipeline file's folder and every input (the fixed part of each source path). */
@@ -259,56 +102,287 @@ export function protectedPaths(lp: LoadedPipeline): string[] {
   return out;
 }
 
-async function loadSources(ctx: StepContext, lp: LoadedPipeline, plan: Plan, sources: SourceResult[], inputs: InputFile[],
-  t: <T>(label: string, f: () => Promise<T>) => Promise<T>, watch: InputWatch): Promise<void> {
+/** The catalog of a run: --catalog, else the pipeline file's `catalog:` (relative to it). */
+export function catalogOf(lp: LoadedPipeline, opts: RunOptions): Catalog | null {
+  const dir = opts.catalog ?? (lp.pipeline.catalog ? path.resolve(lp.dir, lp.pipeline.catalog) : undefined);
+  if (opts.release && !dir) throw new PipelineError(`--release ${opts.release}: no catalog; give --catalog DIR or catalog: in the pipeline file`);
+  return opts.release && dir ? new Catalog(dir) : null;
+}
+
+/** Hashes every input file (for the fingerprints and the manifest) before anything is read. */
+export async function hashInputs(s: Session, lp: LoadedPipeline, plan: Plan, watch: InputWatch): Promise<Map<string, string[]>> {
+  const hashes = new Map<string, string[]>();
   for (const node of plan.sources) {
-    const { name, source: src } = node;
-    ctx.progress.info(`source ${name}: loading ${src.path}`);
-    let r: SourceResult;
+    const { files } = await sourceFiles(s, node.name, node.source, lp.dir);
+    const h = await watch.record(node.name, files);
+    hashes.set(node.name, files.map((f) => h.get(f)!.sha256));
+  }
+  return hashes;
+}
+
+export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Promise<RunReport> {
+  const progress = opts.progress ?? new Progress(false);
+  const started = new Date();
+  // The plan first: a file that is not a valid pipeline stops here (exit 2), before anything is written.
+  const plan = await buildPlan(lp);
+  const catalog = catalogOf(lp, opts);
+  if (opts.release) Catalog.checkId(opts.release);
+  if (opts.release && opts.out) throw new PipelineError("--out and --release: a release is written to its catalog as <catalog>/<release id>; give one of them");
+  const out = catalog ? path.join(catalog.dir, opts.release!) : opts.out ?? defaultRunDir(lp, opts.cwd, started);
+  // One refresh of a catalog at a time (exit 5), then the target: never the current folder, an input's folder or anything but an earlier run (exit 2), and its lock (exit 5).
+  catalog?.acquire();
+  const rd = new RunDir(out);
+  let s: Session;
+  let previous: PreviousRun | null;
+  try {
+    checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd });
+    rd.acquire();
     try {
-      r = await t(`source:${name}`, () => loadSource(ctx.session, lp.pipeline, name, src, lp.dir, { log: (m) => ctx.progress.info(m), located: node.config, watch }));
+      for (const m of rd.cleanStale()) progress.info(m);
+      catalog?.cleanTemporaries();
+      checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd }); // again, under the lock
+      previous = readPrevious(opts.against ?? previousRelease(catalog, opts.release));
+      rd.create();
+      s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
     } catch (e) {
-      const partial = (e as { source?: SourceResult }).source;
-      if (partial) {
-        sources.push(partial);
-        inputs.push(...partial.files);
-      }
-      throw e;
+      rd.discard();
+      throw resourceFailure(e, { tempDir: opts.tempDirectory, outDir: out }) ?? e;
     }
-    sources.push(r);
-    inputs.push(...r.files);
-    fault(`after-source:${name}`);
-    ctx.tables.set(name, { name, keys: node.schema.keys, publish: false });
-    ctx.progress.info(`source ${name}: ${r.rows_loaded} rows loaded, ${r.rows_rejected} rejected, ${r.rows_filtered} filtered out`);
-    await ctx.audits.note(name, "rejected-rows", "warning", r.rows_rejected > 0 ? "fail" : "pass",
-      r.rows_rejected > 0 ? `${r.rows_rejected} of ${r.rows_read} rows of source ${name} rejected (see rejects.parquet)` : `${r.rows_read} rows read, none rejected`,
-      { items: r.rows_read, failed: r.rows_rejected });
+  } catch (e) {
+    catalog?.release();
+    throw e;
+  }
+  const run = new Run(lp, plan, opts, s, rd, progress, started, catalog, previous);
+  try {
+    return await run.execute();
+  } finally {
+    catalog?.release();
   }
 }
 
-async function runStep(ctx: StepContext, node: StepNode, t: <T>(label: string, f: () => Promise<T>) => Promise<T>, streamed: Map<string, OutputFile[]>): Promise<void> {
-  const s = ctx.session;
-  ctx.audits.setStepIndex(node.index + 1);
-  ctx.progress.info(`step ${node.id} (${node.kind.kind}): running`);
-  const step = node.step;
-  // Small tables produced by earlier steps are checked now that they exist.
-  await t(`step:${node.id}`, async () => {
-    if (node.reads.some((r) => r.config && ctx.tables.get(r.table)?.step !== undefined)) await node.kind.check?.(ctx, step as never);
-    await node.kind.run(ctx, step as never);
-  });
-  const pub = step.publish === undefined || step.publish === true ? {} : step.publish === false ? false : step.publish;
-  for (const o of node.outputs) {
-    const files = streamed.get(o.name);
-    if (o.streamed) {
-      if (!files) throw new Error(`step ${node.id} did not write its declared output ${o.name}`);
-      // Later steps read the streamed files as a view.
-      await s.run(`CREATE OR REPLACE VIEW ${ident(o.name)} AS SELECT * FROM read_parquet([${files.map((f) => lit(path.join(ctx.outputDir, f.file))).join(", ")}])`);
+/** The latest release other than `id` (replacing a release compares with the one before it). */
+function previousRelease(catalog: Catalog | null, id?: string): string | null {
+  if (!catalog) return null;
+  const idx = catalog.read();
+  const others = idx.releases.filter((r) => r.id !== id);
+  const latest = idx.latest && idx.latest !== id ? idx.latest : others.length ? others[others.length - 1]!.id : null;
+  return latest ? path.join(catalog.dir, latest) : null;
+}
+
+/** One run: its state, and the stages of `execute`. */
+export class Run {
+  readonly watch = new InputWatch();
+  readonly audits: AuditLog;
+  readonly timings: Record<string, number> = {};
+  readonly sources: SourceReport[] = [];
+  readonly inputs: InputFile[] = [];
+  readonly streamed = new Map<string, OutputFile[]>();
+  outputs: (OutputFile & { step?: string; role?: string })[] = [];
+  prints = new Map<string, NodePrint>();
+  reused = new Set<string>();
+  revisionCounts: { table: string; rows: number }[] = [];
+  readonly ctx: StepContext;
+  readonly resources: { memoryLimit?: string; tempDir: string; outDir: string };
+
+  constructor(readonly lp: LoadedPipeline, readonly plan: Plan, readonly opts: RunOptions, readonly s: Session, readonly rd: RunDir,
+    readonly progress: Progress, readonly started: Date, readonly catalog: Catalog | null, readonly previous: PreviousRun | null) {
+    this.audits = new AuditLog(s, lp.pipeline.base_unit);
+    this.resources = { memoryLimit: opts.memoryLimit, tempDir: opts.tempDirectory ?? path.join(rd.staging, ".spill"), outDir: path.resolve(rd.target) };
+    const tables = new Map<string, TableInfo>();
+    const continued = new Set(plan.steps.map(continuesOf).filter((x): x is string => Boolean(x)));
+    this.ctx = {
+      session: s,
+      pipeline: lp.pipeline,
+      exact: new Exact(massFactor(lp.pipeline.base_unit, "g")),
+      dir: lp.dir,
+      outputDir: rd.staging,
+      audits: this.audits,
+      progress,
+      tables,
+      requireTable(name, option) {
+        const info = tables.get(name);
+        if (!info) throw new Error(`option ${option}: no table ${JSON.stringify(name)} (the plan should have refused this)`);
+        return info;
+      },
+      async columnsOf(name) {
+        return (await s.columns(name)).map((c) => c.name);
+      },
+      streamed: (name, files) => this.streamed.set(name, files),
+      carry: new CarryStore(continued),
+      settings: { ...defaultSettings(), ...opts.settings },
+    };
+  }
+
+  async time<T>(label: string, f: () => Promise<T>): Promise<T> {
+    const t0 = performance.now();
+    try {
+      return await f();
+    } finally {
+      this.timings[label] = Number(((performance.now() - t0) / 1000).toFixed(3));
     }
-    const got = await s.columns(o.name).catch(() => null);
-    if (!got) throw new Error(`step ${node.id} did not produce its declared table ${o.name}`);
-    const want = o.columns.map((c) => `${c.name} ${c.type}`).join(", ");
-    const have = got.map((c) => `${c.name} ${c.type}`).join(", ");
-    if (want !== have) throw new Error(`step ${node.id}: table ${o.name} has columns (${have}); the plan declared (${want})`);
-    ctx.tables.set(o.name, { name: o.name, keys: o.keys, step: node.id, publish: pub === false ? false : o.role === "main" ? pub : {}, ...(files ? { files } : {}) });
+  }
+
+  async execute(): Promise<RunReport> {
+    const { s, plan } = this;
+    try {
+      await this.audits.init();
+      await initRejects(s);
+      const hashes = await this.time("hash_inputs", () => hashInputs(s, this.lp, plan, this.watch));
+      this.prints = fingerprints(plan, TOOL_VERSION, hashes);
+      if (this.previous && this.opts.reuse !== false) {
+        const from = this.opts.reuseFrom ? readPrevious(this.opts.reuseFrom) : this.previous;
+        if (from) this.reused = reusableSteps(plan, this.prints, from);
+      } else if (this.opts.reuseFrom && this.opts.reuse !== false) {
+        const from = readPrevious(this.opts.reuseFrom);
+        if (from) this.reused = reusableSteps(plan, this.prints, from);
+      }
+      if (this.reused.size) this.progress.info(`re-used unchanged: ${[...this.reused].join(", ")}`);
+      await loadSources(this);
+      // From here on pipeline SQL runs in a sandbox: no file, database or extension outside the run.
+      const reuseDir = this.reuseSource()?.dir;
+      await s.sandbox([this.rd.staging, this.resources.tempDir, ...(this.previous ? [this.previous.dir] : []), ...(reuseDir ? [reuseDir] : [])], this.inputs.map((f) => f.path));
+      // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
+      for (const node of plan.steps) if (!this.reused.has(node.id)) await node.kind.check?.(this.ctx, node.step as never);
+      for (const node of plan.steps) {
+        if (this.reused.has(node.id)) await reuseStep(this, node);
+        else await runStep(this, node);
+        this.watch.checkStat(`after step ${node.id}`);
+        if (this.audits.failedErrors.length > 0) {
+          const f = this.audits.failedErrors;
+          throw new AuditFailure(`step ${node.id}: ${f.length} audit check(s) of severity error failed:\n` +
+            f.map((x) => `  ${x.step} ${x.check}: ${x.failed} item(s) failed, e.g. ${x.example}`).join("\n"));
+        }
+        this.progress.info(`step ${node.id}: done in ${this.timings[`step:${node.id}`]} s`);
+      }
+      const { fault } = await import("./fault.js");
+      fault("before-publish");
+      await this.time("verify_inputs", () => this.watch.verifyHashes());
+      if (this.previous) await this.time("revisions", () => publishRevisions(this));
+      await this.time("publish", () => this.publish());
+      return await this.finish("ok");
+    } catch (e) {
+      return this.fail(e);
+    }
+  }
+
+  reuseSource(): PreviousRun | null {
+    return this.opts.reuseFrom ? readPrevious(this.opts.reuseFrom) : this.previous;
+  }
+
+  private async publish(): Promise<void> {
+    for (const info of this.ctx.tables.values()) {
+      if (!info.step) continue;
+      const role = this.plan.steps.find((n) => n.id === info.step)!.outputs.find((o) => o.name === info.name)!.role;
+      if (info.publish === false) continue;
+      if (info.files) {
+        this.outputs.push(...info.files.map((f) => ({ ...f, step: info.step, role })));
+        continue;
+      }
+      this.progress.info(`publishing ${info.name}`);
+      const written = await writeParquet(this.s, { table: info.name, keys: info.keys, dir: this.rd.staging, name: info.name, partitionBy: info.publish.partition_by });
+      this.outputs.push(...written.map((f) => ({ ...f, step: info.step, role })));
+    }
+  }
+
+  private manifest(status: "ok" | "failed", code: number, message: string | undefined, summary: AuditSummary, rejects: number, engine: string) {
+    const { lp, plan } = this;
+    return {
+      tool: { name: "cairn", version: TOOL_VERSION },
+      engine: { duckdb: engine, node: process.version },
+      status,
+      exit_code: code,
+      ...(message ? { error: message } : {}),
+      started_at: this.started.toISOString(),
+      finished_at: new Date().toISOString(),
+      pipeline: { name: lp.pipeline.name, file: lp.file, sha256: lp.sha256, variables: lp.variables, base_unit: lp.pipeline.base_unit },
+      ...(this.opts.release ? { release: { id: this.opts.release, catalog: this.catalog!.dir, provisional: Boolean(this.opts.provisional) } } : {}),
+      previous: this.previous ? { dir: this.previous.dir, reused_from: this.reused.size ? this.reuseSource()?.dir ?? null : null } : null,
+      method: METHOD_NOTE,
+      caution: CAUTION,
+      steps: plan.steps.map((n) => ({
+        id: n.id, kind: n.kind.kind, reads: n.reads.map((r) => r.table),
+        ...(continuesOf(n) ? { continues: continuesOf(n) } : {}),
+        fingerprint: this.prints.get(n.id)?.fingerprint, method_fingerprint: this.prints.get(n.id)?.method, options_fingerprint: this.prints.get(n.id)?.options,
+        reused: this.reused.has(n.id),
+        outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })),
+      })),
+      inputs: this.watch.files().map((f) => ({ ...f, rows: this.inputs.find((i) => i.path === f.path)?.rows ?? null })),
+      sources: this.sources.map((r) => ({ ...r, fingerprint: this.prints.get(r.name)?.fingerprint, method_fingerprint: this.prints.get(r.name)?.method })),
+      outputs: this.outputs,
+      revisions: this.revisionCounts,
+      timings_s: this.timings,
+      rejects,
+      audit: summary,
+    };
+  }
+
+  async finish(status: "ok" | "failed", err?: unknown): Promise<RunReport> {
+    const { s, rd } = this;
+    // Audit table and rejects are always written; tables only on success.
+    this.outputs.push(...(await writeParquet(s, { table: REJECTS_TABLE, name: "rejects", dir: rd.staging, sql: `SELECT * FROM ${REJECTS_TABLE} ORDER BY source, file, "row", line, "column", reason` })));
+    this.outputs.push(...(await writeParquet(s, { table: AUDIT_TABLE, name: "audit", dir: rd.staging, sql: this.audits.orderedSql() })));
+    const summary = await this.audits.summary();
+    const rejects = Number(await s.scalar(`SELECT count(*) FROM ${REJECTS_TABLE}`));
+    const code = status === "ok" ? 0 : exitCodeOf(err);
+    const message = err ? cleanMessage(String((err as Error).message)) : undefined;
+    const engine = await s.version();
+    const manifest = this.manifest(status, code, message, summary, rejects, engine);
+    writeFileSync(path.join(rd.staging, "manifest.json"), JSON.stringify(manifest, null, 2) + "\n");
+    s.close();
+    const report: RunReport = {
+      status, exit_code: code, ...(message ? { error: message } : {}), run_dir: path.resolve(rd.target),
+      ...(this.opts.release ? { release: this.opts.release } : {}), outputs: this.outputs,
+      sources: manifest.sources, reused: [...this.reused], revisions: this.revisionCounts, rejects, audit: summary, timings_s: this.timings,
+    };
+    const failedDir = path.resolve(rd.target) + ".failed";
+    writeFileSync(path.join(rd.staging, "run.log"), this.progress.log() + "\n" + reportText({ ...report, run_dir: status === "ok" ? report.run_dir : failedDir }));
+    if (status === "ok") {
+      rd.commit(Boolean(this.opts.replace));
+      if (this.catalog) this.catalog.publish(this.releaseEntry(manifest, summary, engine));
+    } else report.run_dir = rd.fail();
+    return report;
+  }
+
+  private releaseEntry(m: ReturnType<Run["manifest"]>, summary: AuditSummary, engine: string): ReleaseEntry {
+    return {
+      id: this.opts.release!, started_at: m.started_at, finished_at: m.finished_at, status: "published",
+      audit: { errors: summary.errors, warnings: summary.warnings },
+      pipeline: { name: this.lp.pipeline.name, sha256: this.lp.sha256, file: this.lp.file },
+      tool_version: TOOL_VERSION, engine,
+      inputs: this.watch.files(),
+      previous: this.previous ? path.basename(this.previous.dir) : null,
+      reused: [...this.reused], provisional: Boolean(this.opts.provisional),
+    };
+  }
+
+  private async fail(err: unknown): Promise<RunReport> {
+    let e = err;
+    if (!(e instanceof CairnError) && /Type DOUBLE with value .* can't be cast because the value is out of range for the destination type INT64/i.test(String((e as Error).message))) {
+      e = new DataError(`a quantity too large to sum exactly (one value above ${this.ctx.exact.maxValue.toExponential(1)} ${this.lp.pipeline.base_unit}; sums are kept to 1 g): ${String((e as Error).message).split("\n")[0]}`);
+    }
+    e = resourceFailure(e, this.resources) ?? e;
+    if (e instanceof DataError || e instanceof AuditFailure || e instanceof ResourceError || e instanceof InputChanged) {
+      try {
+        this.outputs = [];
+        return await this.finish("failed", e);
+      } catch (e2) {
+        try {
+          this.s.close();
+        } catch {
+          /* already closed */
+        }
+        this.rd.discard();
+        // A second failure while keeping DIR.failed (a full disk, say) does not hide the first.
+        throw e instanceof ResourceError ? e : resourceFailure(e2, this.resources) ?? e2;
+      }
+    }
+    try {
+      this.s.close();
+    } catch {
+      /* already closed */
+    }
+    this.rd.discard();
+    if (!(e instanceof CairnError) && e instanceof Error) e.message = `internal error: ${cleanMessage(firstLines(e.message))}`;
+    throw e;
   }
 }

@@ -36,6 +36,13 @@ export class InputWatch {
   async record(source: string, files: string[]): Promise<Map<string, { bytes: number; sha256: string }>> {
     const out = new Map<string, { bytes: number; sha256: string }>();
     await Promise.all(files.map(async (f) => {
+      const known = this.seen.get(f);
+      if (known) {
+        // Hashed before (for the fingerprints): checked unchanged since, not read again.
+        this.checkStat(`when source ${source} was loaded`);
+        out.set(f, { bytes: known.bytes, sha256: known.sha256 });
+        return;
+      }
       const before = statSync(f);
       const sha256 = await sha256File(f);
       const after = statSync(f);
@@ -46,6 +53,11 @@ export class InputWatch {
       out.set(f, { bytes: after.size, sha256 });
     }));
     return out;
+  }
+
+  /** The recorded files (path, bytes, SHA-256), for the manifest. */
+  files(): { source: string; path: string; bytes: number; sha256: string }[] {
+    return [...this.seen.values()].map(({ source, path, bytes, sha256 }) => ({ source, path, bytes, sha256 }));
   }
 
   /** Cheap check after each step: size, modification time and inode of every file read so far. */

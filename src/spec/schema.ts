@@ -65,6 +65,8 @@ export const AuditOptions = z
     below_zero_threshold: z.number().min(0).max(1).default(0.05),
     beyond_horizon_threshold: z.number().min(0).max(1).default(0.05),
     lifetime_severity: Severity.default("warning"),
+    revision_threshold: z.number().min(0).default(0.05).describe("relative revision beyond which a past year's figure is flagged by the revision audit"),
+    revision_severity: Severity.default("warning").describe("severity of the revision audit"),
     content_severity: Severity.default("error").describe("severity of content-total: a cohort's content summed over materials above 1 (more material than product mass)"),
   })
   .strict();
@@ -87,6 +89,7 @@ export const PipelineBase = z
       .optional()
       .describe("defaults for ${NAME}; null means it must be given with --set"),
     rejects: RejectLimits.optional().describe("default limits for every source (default: max_rows 0)"),
+    catalog: z.string().min(1).optional().describe("a folder of releases (relative to the pipeline file); `cairn run --release ID` publishes into it"),
     audit: AuditOptions.optional(),
     sources: z.record(Name, Source),
     steps: z.array(z.unknown()).describe("the steps, run in order"),

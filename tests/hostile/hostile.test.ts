@@ -98,7 +98,7 @@ const CASES: Case[] = [
   { name: "too little memory", args: (p) => ["run", p.pipeline, "--out", "runs/x", "--memory-limit", "1MB"], code: 6, message: /out of memory: .*under its memory limit \(1MB\).*Raise --memory-limit/ },
   { name: "the disk fills up before publishing (injected)", env: () => ({ CAIRN_FAULT: "before-publish:enospc" }), code: 7, message: /out of disk space while writing/ },
   { name: "the engine runs out of memory in a step (injected)", env: () => ({ CAIRN_FAULT: "after-step:consumption:oom" }), code: 6, message: /out of memory/ },
-  { name: "an input appended to during the run", env: (p) => ({ CAIRN_FAULT: `after-source:production:append:${path.join(p.dir, "data", "production.csv")}` }), code: 8, message: /source production: .*production\.csv changed during the run \(noticed after step consumption: size \d+ → \d+ bytes/ },
+  { name: "an input appended to during the run", env: (p) => ({ CAIRN_FAULT: `after-source:production:append:${path.join(p.dir, "data", "production.csv")}` }), code: 8, message: /source production: .*production\.csv changed during the run \(noticed [^:]+: size \d+ → \d+ bytes/ },
   { name: "an input replaced by another file during the run", prepare: (p) => writeFileSync(path.join(p.dir, "other.csv"), readFileSync(path.join(p.dir, "data", "trade.csv"))), env: (p) => ({ CAIRN_FAULT: `after-step:consumption:replace:${path.join(p.dir, "data", "trade.csv")}:${path.join(p.dir, "other.csv")}` }), code: 8, message: /trade\.csv changed during the run .*replaced by another file/ },
   { name: "a crash part-way leaves nothing at the target", env: () => ({ CAIRN_FAULT: "after-step:stocks:exit" }), code: -1, message: /^\s*$/ },
 ];
