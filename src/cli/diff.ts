@@ -48,8 +48,21 @@ export function registerDiff(program: Command): void {
             const keys = ((step?.outputs.find((y) => y.name === t) as { keys?: string[] } | undefined)?.keys ?? []).filter((k) => cols.some((c) => c.name === k));
             const schema: TableSchema = { keys, columns: cols.map((c) => ({ name: c.name, type: c.type, description: "" })) };
             const methodChanged = Boolean(step && stepsA.get(step.id)?.method_fingerprint !== (step as { method_fingerprint?: string }).method_fingerprint);
-            await revisions(s, { table: t, step: step?.id ?? t, schema, previousFiles: filesA, methodChanged, changedSources: [], coarseSources: changedSources });
-            result[t] = await s.all(`SELECT * FROM ${ident(revisionsTable(t))} ORDER BY abs(coalesce(revision, 0)) DESC, ALL LIMIT ${o.top}`);
+            // Sources upstream of the table's step (from the manifest's reads), among those whose files changed.
+            const up = new Set<string>();
+            const walk = (id: string, seen = new Set<string>()) => {
+              if (seen.has(id)) return;
+              seen.add(id);
+              const st = B.manifest.steps?.find((x) => x.id === id) as { reads?: string[] } | undefined;
+              for (const r of st?.reads ?? []) {
+                const producer = B.manifest.steps?.find((x) => x.outputs.some((y) => y.name === r));
+                if (producer) walk(producer.id, seen);
+                else up.add(r);
+              }
+            };
+            if (step) walk(step.id);
+            await revisions(s, { table: t, step: step?.id ?? t, schema, previousFiles: filesA, methodChanged, changedSources: [], coarseSources: changedSources.filter((x) => up.has(x)) });
+            result[t] = await s.all(`SELECT * FROM ${ident(revisionsTable(t))} ORDER BY abs(coalesce(revision, 0)) DESC, variable LIMIT ${o.top}`);
           }
         } finally {
           s.close();

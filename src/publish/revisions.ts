@@ -131,7 +131,7 @@ export async function revisions(s: Session, r: RevisionRequest): Promise<number>
       CASE WHEN __new THEN 'new' WHEN __dropped THEN 'dropped'
         WHEN len(__src) > 0 AND __method THEN 'input+method' WHEN len(__src) > 0 THEN 'input'
         WHEN __method THEN 'method' ELSE 'unexplained' END AS cause,
-      CASE WHEN len(__src) > 0 THEN array_to_string(__src, ', ') END AS sources
+      CASE WHEN len(__src) > 0 AND NOT __new AND NOT __dropped THEN array_to_string(__src, ', ') END AS sources
     FROM e ORDER BY ${idents(keys)}, variable`);
   return Number(await s.scalar(`SELECT count(*) FROM ${t}`));
 }

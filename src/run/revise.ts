@@ -64,8 +64,9 @@ export async function publishRevisions(run: Run): Promise<void> {
 async function newestDataYear(run: Run): Promise<number | null> {
   let newest: number | null = null;
   for (const src of run.plan.sources) {
-    if (src.config || !run.ctx.tables.has(src.name) || !src.schema.columns.some((c) => c.name === "year")) continue;
-    const y = await run.ctx.session.scalar<number | bigint | null>(`SELECT max(year) FROM ${ident(src.name)}`);
+    if (src.config) continue;
+    // Loaded or taken over, every source report carries its newest year.
+    const y = run.sources.find((r) => r.name === src.name)?.year_max;
     if (y !== null && y !== undefined) newest = Math.max(newest ?? -Infinity, Number(y));
   }
   return newest;

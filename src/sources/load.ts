@@ -29,6 +29,8 @@ export interface SourceResult {
   rows_rejected: number;
   rows_filtered: number;
   rows_loaded: number;
+  /** The newest year in the source, when it has a year column. */
+  year_max?: number | null;
   files: InputFile[];
 }
 
@@ -471,6 +473,7 @@ export async function loadSource(s: Session, pipeline: Pipeline, name: string, s
     rows_rejected: rejected,
     rows_filtered: okRows - loaded,
     rows_loaded: loaded,
+    ...(outCols.includes("year") && loaded > 0 ? { year_max: Number(await s.scalar(`SELECT max(year) FROM ${ident(name)}`)) } : {}),
     files: files.map((f) => ({ source: name, path: f, bytes: hashes.get(f)!.bytes, sha256: hashes.get(f)!.sha256, rows: (perFile.get(f) ?? 0) + (csvPerFile.get(f) ?? 0) })),
   };
   if (rejected > maxRows || (rows_read > 0 && rejected / rows_read > maxShare)) {

@@ -259,9 +259,8 @@ export function loadPipeline(file: string, sets: Record<string, string> = {}): L
   const doc = parseDocument(text, { lineCounter: lc, prettyErrors: false, uniqueKeys: true, strict: true });
   const loc = new Locator(file, doc, lc);
   if (doc.errors.length > 0) {
-    throw new PipelineError(
-      doc.errors.map((e) => `${loc.pos(e.pos[0])}: YAML syntax error: ${e.message.split("\n")[0]}`).join("\n"),
-    );
+    const shown = doc.errors.slice(0, 5).map((e) => `${loc.pos(e.pos[0])}: YAML syntax error: ${e.message.split("\n")[0]}`);
+    throw new PipelineError(shown.join("\n") + (doc.errors.length > 5 ? `\n… and ${doc.errors.length - 5} more (the first is usually the cause; a value holding { } [ ] : or $\{ may need quotes)` : ""));
   }
   let data: unknown;
   try {

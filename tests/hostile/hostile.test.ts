@@ -174,9 +174,10 @@ describe("hostile runs: concurrency, locks and kills", () => {
     const before = snapshot(p.dir, runFiles(["runs"]));
     for (const delay of [200, 500, 800, 1100, 1400]) {
       const child = spawn(process.execPath, [CLI, "run", p.pipeline, "--out", "runs/x", "--replace", "--quiet"], { cwd: p.dir, stdio: "ignore" });
+      const exited = new Promise((r) => child.on("exit", r));
       await new Promise((r) => setTimeout(r, delay + Math.floor(Math.random() * 200)));
       child.kill("SIGKILL");
-      await new Promise((r) => child.on("exit", r));
+      await exited;
       expect(existsSync(path.join(p.dir, "runs", "x", "manifest.json"))).toBe(true); // never absent
       expectWholeOrAbsent(path.join(p.dir, "runs", "x"));
     }

@@ -133,9 +133,10 @@ describe("a run killed part-way", () => {
     for (const delay of [150, 400, 700, 1000]) {
       for (const [target, replace] of [[out, true], [fresh, false]] as const) {
         const child = spawn(process.execPath, [CLI, "run", DEMO, "--out", target, "--quiet", ...(replace ? ["--replace"] : [])], { stdio: "ignore" });
+        const exited = new Promise((r) => child.on("exit", r));
         await new Promise((r) => setTimeout(r, delay));
         child.kill("SIGKILL");
-        await new Promise((r) => child.on("exit", r));
+        await exited;
         // The earlier run is complete and unchanged, or (if the kill came after the swap) a complete new run.
         if (existsSync(out)) {
           const now = files(out);
