@@ -39,9 +39,9 @@ export function registerDiff(program: Command): void {
           const changedSources = (B.manifest.sources ?? []).filter((x) => srcA.get(x.name) !== x.fingerprint).map((x) => x.name);
           const stepsA = new Map((A.manifest.steps ?? []).map((x) => [x.id, x]));
           for (const t of tables) {
-            const filesA = A.manifest.outputs.filter((x) => x.table === t).map((x) => path.join(A.dir, x.file));
+            const filesA = A.manifest.outputs.filter((x) => x.table === t && (x.format ?? "parquet") === "parquet").map((x) => path.join(A.dir, x.file));
             if (!filesA.length) continue;
-            const filesB = B.manifest.outputs.filter((x) => x.table === t).map((x) => path.join(B.dir, x.file));
+            const filesB = B.manifest.outputs.filter((x) => x.table === t && (x.format ?? "parquet") === "parquet").map((x) => path.join(B.dir, x.file));
             const step = B.manifest.steps?.find((x) => x.outputs.some((y) => y.name === t));
             await s.run(`CREATE OR REPLACE VIEW ${ident(t)} AS SELECT * FROM read_parquet([${filesB.map(lit).join(", ")}])`);
             const cols = await s.columns(t);

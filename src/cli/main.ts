@@ -10,6 +10,7 @@ import { registerDemo } from "./demo.js";
 import { registerReleases } from "./releases.js";
 import { registerPlan } from "./plan.js";
 import { registerDiff } from "./diff.js";
+import { registerDescribe } from "./describe.js";
 
 // Output piped into a program that stops reading (head, say) ends the command quietly.
 process.stdout.on("error", (e: NodeJS.ErrnoException) => {
@@ -34,6 +35,7 @@ registerDemo(program);
 registerPlan(program);
 registerReleases(program);
 registerDiff(program);
+registerDescribe(program);
 
 program.parseAsync(process.argv).catch((e: unknown) => {
   process.stderr.write(`cairn: ${(e as Error).message ?? String(e)}\n`);

@@ -203,6 +203,11 @@ export function generateDemo(dir: string, seed = 20261201): void {
     targets.push(`${r},${p.name},2035,${fmt(cor ? 1.6 : 1 + p.growth * 4)}`);
     targets.push(`${r},${p.name},2050,${fmt(cor ? 2.1 : dun ? 0.75 : 1 + p.growth * 6)}`);
   }
+  // Codes of an invented statistical office for the SDMX-CSV exports.
+  const officeCodes = ["value,code,label", ...REGIONS.map((r, i) => `${r},R${String(i + 1).padStart(2, "0")},${REGION_NAMES[r]}`)];
+  const materialCodes = ["value,code,label", "aluminium,AL,aluminium", "cement,CEM,cement", "copper,CU,copper", "plastics,PLS,plastics", "steel,ST,steel"];
+  writeFileSync(path.join(dir, "office_region_codes.csv"), officeCodes.join("\n") + "\n");
+  writeFileSync(path.join(dir, "office_material_codes.csv"), materialCodes.join("\n") + "\n");
   writeFileSync(path.join(dir, "lifetimes.csv"), lifetimes.join("\n") + "\n");
   writeFileSync(path.join(dir, "content.csv"), content.join("\n") + "\n");
   writeFileSync(path.join(dir, "initial_stock.csv"), initial.join("\n") + "\n");

@@ -46,6 +46,8 @@ export interface Plan {
   schemas: Map<string, TableSchema>;
   /** Table name → the step id that produces it (sources absent). */
   producer: Map<string, string>;
+  /** Tables read by exports and the data dictionary's labels (loaded even when no step reads them). */
+  extraReads: string[];
 }
 
 function owner(plan: { producer: Map<string, string> }, name: string, sources: Set<string>): string {
@@ -103,7 +105,7 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
       if (pub && typeof pub === "object") {
         const main = outputs.find((o) => o.role === "main")!;
         const cols = main.columns.map((c) => c.name);
-        const bad = pub.partition_by.filter((c) => !cols.includes(c));
+        const bad = (pub.partition_by ?? []).filter((c) => !cols.includes(c));
         if (bad.length) ctx.fail("publish", `partition_by ${bad.join(", ")}: not ${bad.length > 1 ? "columns" : "a column"} of ${main.name} (its columns: ${cols.join(", ")})`);
       }
       for (const o of outputs) {
@@ -125,8 +127,62 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
       }
       steps.push({ index: i, id: step.id, kind, step, reads, outputs });
     }
-    return { lp, sources, steps, schemas, producer };
+    const extraReads = checkExportsAndLabels(lp, schemas, producer, steps, sources);
+    return { lp, sources, steps, schemas, producer, extraReads };
   } finally {
     sandbox.close();
   }
+}
+
+const NUMERIC = /^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT)$/;
+
+/** Exports name published tables and their columns; code and label tables exist with their columns. */
+function checkExportsAndLabels(lp: LoadedPipeline, schemas: Map<string, TableSchema>, producer: Map<string, string>, steps: StepNode[], sources: SourceNode[]): string[] {
+  const p = lp.pipeline;
+  const reads: string[] = [];
+  const fail = (at: (string | number)[], m: string): never => {
+    throw new PipelineError(`${lp.locate(at)}: ${m}`);
+  };
+  const markConfig = (t: string) => {
+    reads.push(t);
+    const src = sources.find((x) => x.name === t);
+    if (src) src.config = true;
+  };
+  (p.exports ?? []).forEach((e, i) => {
+    const at = (k: string) => ["exports", i, k];
+    const step = producer.get(e.table);
+    const node = steps.find((n) => n.id === step);
+    const decl = node?.outputs.find((o) => o.name === e.table);
+    if (!decl) fail(at("table"), `${JSON.stringify(e.table)} is not a table of a step (known: ${[...producer.keys()].join(", ")})`);
+    if (decl!.streamed || node!.step.publish === false) fail(at("table"), `${e.table} is not published as a table (streamed or publish: false)`);
+    const cols = new Map(decl!.columns.map((c) => [c.name, c.type]));
+    const need = (col: string, k: string) => { if (!cols.has(col)) fail(at(k), `${e.table} has no column ${col} (its columns: ${[...cols.keys()].join(", ")})`); };
+    for (const [id, d] of Object.entries(e.dimensions)) {
+      const col = typeof d === "string" ? d : d.column;
+      need(col, "dimensions");
+      if (typeof d !== "string" && d.codes) {
+        const cs = schemas.get(d.codes);
+        if (!cs) fail(at("dimensions"), `dimension ${id}: no table ${JSON.stringify(d.codes)} (a source or a step's table with columns value and code)`);
+        const missing = ["value", "code"].filter((c) => !cs!.columns.some((x) => x.name === c));
+        if (missing.length) fail(at("dimensions"), `dimension ${id}: code table ${d.codes} lacks column(s) ${missing.join(", ")} (contract: value, code, optional label)`);
+        markConfig(d.codes);
+      }
+    }
+    need(e.time, "time");
+    need(e.measure, "measure");
+    if (!NUMERIC.test(cols.get(e.measure)!)) fail(at("measure"), `${e.measure} (${cols.get(e.measure)}) is not numeric`);
+    if (e.estimated_when) {
+      need(e.estimated_when, "estimated_when");
+      if (cols.get(e.estimated_when) !== "BOOLEAN") fail(at("estimated_when"), `${e.estimated_when} is not a boolean column`);
+    }
+  });
+  for (const [col, table] of Object.entries(p.labels ?? {})) {
+    const ts = schemas.get(table);
+    if (!ts) fail(["labels", col], `no table ${JSON.stringify(table)} among the sources and the tables of the steps`);
+    const names = ts!.columns.map((c) => c.name);
+    if (!names.includes(col) && !names.includes("code")) fail(["labels", col], `table ${table} has neither ${col} nor code (it has ${names.join(", ")})`);
+    if (!names.includes("label") && !names.includes("name")) fail(["labels", col], `table ${table} has neither label nor name (it has ${names.join(", ")})`);
+    markConfig(table);
+  }
+  return reads;
 }

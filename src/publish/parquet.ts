@@ -7,6 +7,8 @@ import { ident, idents, lit } from "../engine/sql.js";
 
 export interface OutputFile {
   table: string;
+  /** parquet (the default, the run's canonical copy), arrow or csv (beside it), sdmx-csv (exports). */
+  format?: string;
   file: string;
   rows: number;
   bytes: number;
@@ -28,7 +30,7 @@ export function sha256(file: string): string {
 }
 
 /** Writes `sql` (or a table, sorted by its keys then every other column) as Parquet under `dir`. */
-export async function writeParquet(s: Session, opts: { table: string; sql?: string; keys?: string[]; dir: string; name: string; partitionBy?: string[] }): Promise<OutputFile[]> {
+export async function writeParquet(s: Session, opts: { table: string; sql?: string; keys?: string[]; dir: string; name: string; partitionBy?: string[]; metadata?: Record<string, string> }): Promise<OutputFile[]> {
   let query = opts.sql;
   if (!query) {
     const cols = (await s.columns(opts.table)).map((c) => c.name);
@@ -40,7 +42,10 @@ export async function writeParquet(s: Session, opts: { table: string; sql?: stri
   const target = path.join(opts.dir, rel);
   mkdirSync(path.dirname(target), { recursive: true });
   const part = opts.partitionBy?.length ? `, PARTITION_BY (${idents(opts.partitionBy)}), OVERWRITE_OR_IGNORE true` : "";
-  await s.run(`COPY (${query}) TO ${lit(target)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880${part})`);
+  // Key-value metadata in the file's footer: a reader of this file alone knows its units and meaning.
+  const kv = opts.metadata && Object.keys(opts.metadata).length
+    ? `, KV_METADATA {${Object.entries(opts.metadata).map(([k, v]) => `${lit(k)}: ${lit(v)}`).join(", ")}}` : "";
+  await s.run(`COPY (${query}) TO ${lit(target)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880${part}${kv})`);
   const files = opts.partitionBy?.length ? walk(target) : [target];
   const out: OutputFile[] = [];
   for (const f of files) {

@@ -23,7 +23,7 @@ export interface PreviousRun {
     status: string;
     steps?: { id: string; fingerprint?: string; method_fingerprint?: string; options_fingerprint?: string; outputs: { name: string }[] }[];
     sources?: { name: string; fingerprint?: string; method_fingerprint?: string; [k: string]: unknown }[];
-    outputs: { table: string; file: string; sha256: string; rows: number; bytes: number; step?: string; role?: string }[];
+    outputs: { table: string; file: string; sha256: string; rows: number; bytes: number; step?: string; role?: string; format?: string }[];
     inputs?: { source: string; path: string; sha256: string }[];
     [k: string]: unknown;
   };

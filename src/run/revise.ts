@@ -45,7 +45,7 @@ export async function publishRevisions(run: Run): Promise<void> {
     for (const o of node.outputs) {
       const info = run.ctx.tables.get(o.name);
       if (!info || info.publish === false || o.streamed) continue;
-      const previousFiles = prev.manifest.outputs.filter((f) => f.table === o.name).map((f) => path.join(prev.dir, f.file));
+      const previousFiles = prev.manifest.outputs.filter((f) => f.table === o.name && (f.format ?? "parquet") === "parquet").map((f) => path.join(prev.dir, f.file));
       if (!previousFiles.length) continue; // a table the previous release did not publish
       const rows = await revisions(s, {
         table: o.name, step: node.id, schema: o, previousFiles, methodChanged: optionsChanged,
@@ -60,11 +60,18 @@ export async function publishRevisions(run: Run): Promise<void> {
   }
 }
 
-/** The newest year in the data sources (not the small configuring tables): revisions before it must be explained. */
-async function newestDataYear(run: Run): Promise<number | null> {
+/**
+ * The newest year of observed data: the newest year of the data sources (not the small
+ * configuring tables) behind the history, that is, behind the models that a scenario continues
+ * when there are any (a population path to 2050 is a scenario driver, not data), else behind
+ * every step. Revisions before it must be explained; exported years after it are forecasts.
+ */
+export async function newestDataYear(run: Run): Promise<number | null> {
+  const continued = run.plan.steps.map((n) => (n.step as { continues?: { step: string } }).continues?.step).filter((x): x is string => Boolean(x));
+  const history = continued.length ? new Set(continued.flatMap((id) => [...upstreamSources(run, id)])) : null;
   let newest: number | null = null;
   for (const src of run.plan.sources) {
-    if (src.config) continue;
+    if (src.config || (history && !history.has(src.name))) continue;
     // Loaded or taken over, every source report carries its newest year.
     const y = run.sources.find((r) => r.name === src.name)?.year_max;
     if (y !== null && y !== undefined) newest = Math.max(newest ?? -Infinity, Number(y));

@@ -5,7 +5,7 @@
  * audits, revisions against the previous release, then publishing into the run directory (and,
  * for a release, the catalog's index). The runner knows no step kind: each declares its outputs.
  */
-import { writeFileSync } from "node:fs";
+import { statSync, writeFileSync } from "node:fs";
 import path from "node:path";
 import { createRequire } from "node:module";
 import { AuditFailure, CairnError, DataError, InputChanged, PipelineError, ResourceError, exitCodeOf, resourceFailure, firstLines } from "../errors.js";
@@ -16,6 +16,10 @@ import { initRejects, REJECTS_TABLE, sourceFiles, type InputFile, type SourceRes
 import type { RunSettings, StepContext, TableInfo } from "../steps/types.js";
 import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
+import { writeArrow, writeCsv } from "../publish/arrow.js";
+import { describeTable, parquetMetadata, tableUnits, type DictTable } from "../publish/dictionary.js";
+import { writeSdmx } from "../publish/sdmx.js";
+import { sha256 } from "../publish/parquet.js";
 import { checkTarget, RunDir } from "../publish/rundir.js";
 import { InputWatch } from "../sources/verify.js";
 import { Progress } from "./progress.js";
@@ -27,7 +31,7 @@ import { CarryStore } from "../steps/cohort-model/carry.js";
 import { Catalog, type ReleaseEntry } from "../publish/catalog.js";
 import { readPrevious, reusableSteps, type PreviousRun } from "./reuse.js";
 import { loadSources, reuseStep, runStep } from "./steps.js";
-import { publishRevisions } from "./revise.js";
+import { newestDataYear, publishRevisions } from "./revise.js";
 import { reportText } from "./report-text.js";
 
 const require = createRequire(import.meta.url);
@@ -270,17 +274,48 @@ export class Run {
   }
 
   private async publish(): Promise<void> {
+    const dictionary: DictTable[] = [];
     for (const info of this.ctx.tables.values()) {
       if (!info.step) continue;
-      const role = this.plan.steps.find((n) => n.id === info.step)!.outputs.find((o) => o.name === info.name)!.role;
+      const node = this.plan.steps.find((n) => n.id === info.step)!;
+      const decl = node.outputs.find((o) => o.name === info.name)!;
+      const role = decl.role;
       if (info.publish === false) continue;
       if (info.files) {
         this.outputs.push(...info.files.map((f) => ({ ...f, step: info.step, role })));
-        continue;
-      }
+      } else {
       this.progress.info(`publishing ${info.name}`);
-      const written = await writeParquet(this.s, { table: info.name, keys: info.keys, dir: this.rd.staging, name: info.name, partitionBy: info.publish.partition_by });
+      const metadata = parquetMetadata(decl, await tableUnits(this.s, info.name, decl), CAUTION);
+      const written = await writeParquet(this.s, { table: info.name, keys: info.keys, dir: this.rd.staging, name: info.name, partitionBy: info.publish.partition_by, metadata });
       this.outputs.push(...written.map((f) => ({ ...f, step: info.step, role })));
+      for (const fmt of info.publish.formats ?? []) {
+        this.progress.info(`publishing ${info.name} as ${fmt}`);
+        const file = path.join(this.rd.staging, `${info.name}.${fmt}`);
+        const w = fmt === "arrow" ? await writeArrow(this.s, info.name, info.keys, file) : await writeCsv(this.s, info.name, info.keys, file);
+        this.outputs.push({ ...w, format: fmt, step: info.step, role });
+      }
+      }
+      const files = this.outputs.filter((o) => o.table === info.name);
+      dictionary.push(await describeTable(this.s, this.lp.pipeline, decl, { step: node.id, kind: node.kind.kind, files: files.map((f) => f.file), rows: files.filter((f) => (f.format ?? "parquet") === "parquet").reduce((a, f) => a + f.rows, 0) }));
+    }
+    const dictFile = path.join(this.rd.staging, "dictionary.json");
+    writeFileSync(dictFile, JSON.stringify({ pipeline: this.lp.pipeline.name, caution: CAUTION, tables: dictionary }, null, 2) + "\n");
+    this.outputs.push({ table: "dictionary", format: "json", file: "dictionary.json", rows: dictionary.length, bytes: statSync(dictFile).size, sha256: sha256(dictFile) });
+    await this.exports();
+  }
+
+  /** Files for statistical offices (exports:), made from the published tables. */
+  private async exports(): Promise<void> {
+    const newest = await newestDataYear(this);
+    for (const e of this.lp.pipeline.exports ?? []) {
+      this.progress.info(`exporting ${e.table} as ${e.format} (${e.agency}:${e.id})`);
+      const node = this.plan.steps.find((n) => n.id === this.plan.producer.get(e.table))!;
+      const columns = node.outputs.find((o) => o.name === e.table)!.columns.map((c) => c.name);
+      const f = await writeSdmx({
+        session: this.s, dir: this.rd.staging, baseUnit: this.lp.pipeline.base_unit, modelled: ["cohort-model", "yearly-path"].includes(node.kind.kind),
+        newestDataYear: newest, provisional: Boolean(this.opts.provisional), replaces: Boolean(this.catalog && this.previous),
+      }, e, columns);
+      this.outputs.push({ ...f, step: node.id, role: "export" });
     }
   }
 

@@ -12,7 +12,7 @@ import { sha256, writeParquet } from "../publish/parquet.js";
 /** Loads the sources that computed steps read; the others (read only by re-used steps) are taken over. */
 export async function loadSources(run: Run): Promise<void> {
   const { ctx, plan, lp } = run;
-  const needed = new Set(plan.steps.filter((n) => !run.reused.has(n.id)).flatMap((n) => n.reads.map((r) => r.table)));
+  const needed = new Set([...plan.steps.filter((n) => !run.reused.has(n.id)).flatMap((n) => n.reads.map((r) => r.table)), ...plan.extraReads]);
   const from = run.reuseSource();
   for (const node of plan.sources) {
     const { name, source: src } = node;
@@ -109,8 +109,8 @@ export async function reuseStep(run: Run, node: StepNode): Promise<void> {
   await run.time(`step:${node.id}`, async () => {
     const files = takeFiles(from, node.outputs.map((o) => o.name), run.rd.staging);
     for (const o of node.outputs) {
-      const mine = files.filter((f) => f.table === o.name).map((f) => ({ table: f.table, file: f.file, rows: f.rows, bytes: f.bytes, sha256: f.sha256 }));
-      await viewOver(ctx.session, o.name, mine.map((f) => path.join(run.rd.staging, f.file)));
+      const mine = files.filter((f) => f.table === o.name).map((f) => ({ table: f.table, file: f.file, rows: f.rows, bytes: f.bytes, sha256: f.sha256, ...(f.format ? { format: f.format } : {}) }));
+      await viewOver(ctx.session, o.name, mine.filter((f) => (f.format ?? "parquet") === "parquet").map((f) => path.join(run.rd.staging, f.file)));
       ctx.tables.set(o.name, { name: o.name, keys: o.keys, step: node.id, publish: {}, files: mine });
     }
     await takeAudit(ctx.session, from, node.id, node.index + 1);

@@ -18,16 +18,20 @@ export const UnitText = z
 
 export const Severity = z.enum(["error", "warning"]);
 
+export const PUBLISH_FORMATS = ["arrow", "csv"] as const;
+
 export const Publish = z
   .union([
     z.boolean(),
     z
       .object({
-        partition_by: z.array(Name).min(1).describe("key columns to partition the Parquet output by (one folder per value)"),
+        partition_by: z.array(Name).min(1).optional().describe("key columns to partition the Parquet output by (one folder per value)"),
+        formats: z.array(z.enum(PUBLISH_FORMATS)).min(1).optional()
+          .describe("files written beside the Parquet file (which is always written): arrow (Arrow IPC file, key columns dictionary-encoded), csv"),
       })
       .strict(),
   ])
-  .describe("publish this step's tables in the run directory (default true); or {partition_by: [...]}");
+  .describe("publish this step's tables in the run directory (default true); or {partition_by: [...], formats: [arrow, csv]}");
 
 /** Column name mapping for a step's inputs: contract name → column in the table. */
 export const ColumnMap = (names: readonly string[]) =>

@@ -1,0 +1,116 @@
+/**
+ * SDMX-CSV 2.0 export (SDMX Technical Working Group, SDMX-CSV format specification v2.0.0,
+ * 2021, aligned with SDMX 3.0). One file per export, UTF-8, comma-separated, a header row:
+ *   STRUCTURE, STRUCTURE_ID, ACTION        the structure type (dataflow, datastructure or
+ *                                           dataprovision), its id AGENCY:ID(VERSION), the action
+ *                                           (I information, A append, R replace, D delete)
+ *   the dimension ids, TIME_PERIOD         the series keys mapped to the office's codes
+ *   OBS_VALUE                              the measure, scaled by UNIT_MULT
+ *   OBS_STATUS, UNIT_MEASURE, UNIT_MULT    attributes (OBS_STATUS from CL_OBS_STATUS)
+ * Values are printed as the shortest decimal at the base unit's resolution (1 g): exact, no
+ * float noise. The rules that give OBS_STATUS are documented in the README and can be changed.
+ */
+import { z } from "zod";
+import path from "node:path";
+import { mkdirSync, statSync } from "node:fs";
+import { Name } from "../spec/common.js";
+import { DataError } from "../errors.js";
+import type { Session } from "../engine/session.js";
+import { ident, lit } from "../engine/sql.js";
+import { massFactor } from "../units.js";
+import { sha256, type OutputFile } from "./parquet.js";
+
+/** SDMX-ML IDType (SDMX 3.0 Technical Notes): a letter, then letters, digits, _ or -. */
+export const SdmxId = z.string().regex(/^[A-Za-z][A-Za-z0-9_-]*$/, "an SDMX id: a letter, then letters, digits, _ or -");
+
+/** CL_OBS_STATUS, SDMX cross-domain code list (v2.2): the codes DOMAIN.md lists; H, J, K and W from memory. */
+export const OBS_STATUS_CODES = ["A", "B", "D", "E", "F", "G", "H", "I", "J", "K", "L", "M", "N", "O", "P", "Q", "S", "U", "V", "W"] as const;
+const Status = z.enum(OBS_STATUS_CODES);
+
+export const SdmxExport = z.object({
+  format: z.literal("sdmx-csv"),
+  table: Name.describe("a published table of the pipeline"),
+  file: z.string().regex(/^[A-Za-z0-9_./-]+\.csv$/).refine((f) => !f.split("/").includes("..") && !f.startsWith("/"), "a relative path inside the run directory")
+    .optional().describe("the file in the run directory (default sdmx/<table>.csv)"),
+  structure: z.enum(["dataflow", "datastructure", "dataprovision"]).default("dataflow"),
+  agency: SdmxId.describe("the maintenance agency of the structure"),
+  id: SdmxId.describe("the structure's id"),
+  version: z.string().regex(/^\d+(\.\d+){0,2}(-[A-Za-z0-9]+)?$/).default("1.0"),
+  action: z.enum(["I", "A", "R", "D"]).optional().describe("default I, or R for a release that replaces an earlier one in the catalog"),
+  dimensions: z.record(SdmxId, z.union([Name, z.object({ column: Name, codes: Name.optional() }).strict()]))
+    .describe("dimension id → the table's column, optionally with a code table (columns value, code) mapping its values to the office's codes"),
+  time: Name.default("year").describe("the column of TIME_PERIOD"),
+  measure: Name.describe("the column of OBS_VALUE"),
+  unit_measure: z.string().min(1).describe("the UNIT_MEASURE code (e.g. T for tonnes)"),
+  unit_mult: z.number().int().min(-6).max(15).default(0).describe("UNIT_MULT: values are divided by 10^unit_mult (3: thousands)"),
+  obs_status: z.object({ reported: Status.default("A"), estimated: Status.default("E"), forecast: Status.default("F"), provisional: Status.default("P") }).strict().optional(),
+  estimated_when: Name.optional().describe("a boolean column that marks estimated values (default: mirrored, when the table has it)"),
+  forecast_from: z.number().int().optional().describe("the first forecast year (default: the year after the newest data year)"),
+}).strict();
+export type SdmxExportT = z.output<typeof SdmxExport>;
+
+export interface SdmxContext {
+  session: Session;
+  dir: string;
+  baseUnit: string;
+  /** Step kind of the table's producer: modelled tables (cohort-model, yearly-path) are estimates. */
+  modelled: boolean;
+  newestDataYear: number | null;
+  provisional: boolean;
+  /** An earlier release exists: the default action is R. */
+  replaces: boolean;
+}
+
+/** The exact decimal text of a value at the base unit's resolution (1 g), divided by 10^mult. */
+export function decimalSql(expr: string, baseUnit: string, mult: number): string {
+  const grams = massFactor(baseUnit, "g"); // a power of ten for every mass unit
+  const digits = Math.round(Math.log10(grams)) + mult;
+  const g = `CAST(round((${expr}) * ${grams}) AS HUGEINT)`;
+  const sign = `CASE WHEN ${g} < 0 THEN '-' ELSE '' END`;
+  if (digits <= 0) return `(${sign} || CAST(abs(${g}) AS VARCHAR) || ${lit("0".repeat(-digits))})`;
+  // Zeros in front up to digits + 1 characters (DuckDB's lpad would cut a longer text).
+  const raw = `CAST(abs(${g}) AS VARCHAR)`;
+  const s = `(repeat('0', greatest(0, ${digits + 1} - length(${raw}))) || ${raw})`;
+  const int = `left(${s}, length(${s}) - ${digits})`;
+  const frac = `rtrim(right(${s}, ${digits}), '0')`;
+  return `(CASE WHEN ${g} = 0 THEN '0' ELSE ${sign} || ${int} || CASE WHEN ${frac} = '' THEN '' ELSE '.' || ${frac} END END)`;
+}
+
+export async function writeSdmx(x: SdmxContext, e: SdmxExportT, columns: string[]): Promise<OutputFile> {
+  const s = x.session;
+  const file = e.file ?? `sdmx/${e.table}.csv`;
+  const target = path.join(x.dir, file);
+  mkdirSync(path.dirname(target), { recursive: true });
+  const dims = Object.entries(e.dimensions).map(([id, d]) => ({ id, column: typeof d === "string" ? d : d.column, codes: typeof d === "string" ? undefined : d.codes }));
+  // Every value of a mapped dimension must have a code: a missing one is named, never dropped.
+  for (const d of dims) {
+    if (!d.codes) continue;
+    const missing = await s.all(`SELECT DISTINCT CAST(t.${ident(d.column)} AS VARCHAR) AS v FROM ${ident(e.table)} t
+      ANTI JOIN ${ident(d.codes)} c ON CAST(c.value AS VARCHAR) = CAST(t.${ident(d.column)} AS VARCHAR) ORDER BY 1 LIMIT 10`);
+    if (missing.length) throw new DataError(`export ${e.id} (${e.table}): dimension ${d.id}: the value(s) ${missing.map((m) => JSON.stringify(m.v)).join(", ")} of ${d.column} have no code in ${d.codes} (columns value, code); add them`);
+    const dup = await s.all(`SELECT CAST(value AS VARCHAR) AS v FROM ${ident(d.codes)} GROUP BY 1 HAVING count(DISTINCT code) > 1 LIMIT 3`);
+    if (dup.length) throw new DataError(`export ${e.id}: code table ${d.codes} gives several codes for ${dup.map((r) => JSON.stringify(r.v)).join(", ")}`);
+    const badCode = await s.all(`SELECT DISTINCT CAST(code AS VARCHAR) AS c FROM ${ident(d.codes)} WHERE NOT regexp_full_match(CAST(code AS VARCHAR), '[A-Za-z0-9_@$\\-]+') LIMIT 3`);
+    if (badCode.length) throw new DataError(`export ${e.id}: code table ${d.codes} has code(s) ${badCode.map((r) => JSON.stringify(r.c)).join(", ")} that are not SDMX codes (letters, digits, _ @ $ -)`);
+  }
+  const st = { reported: "A", estimated: "E", forecast: "F", provisional: "P", ...e.obs_status };
+  const estCol = e.estimated_when ?? (columns.includes("mirrored") ? "mirrored" : undefined);
+  const forecastFrom = e.forecast_from ?? (x.newestDataYear !== null ? x.newestDataYear + 1 : null);
+  const status = `CASE WHEN FALSE THEN NULL ${x.provisional ? `WHEN TRUE THEN ${lit(st.provisional)}` : ""}
+      ${forecastFrom !== null ? `WHEN t.${ident(e.time)} >= ${forecastFrom} THEN ${lit(st.forecast)}` : ""}
+      ${x.modelled ? `WHEN TRUE THEN ${lit(st.estimated)}` : ""}
+      ${estCol ? `WHEN coalesce(t.${ident(estCol)}, FALSE) THEN ${lit(st.estimated)}` : ""}
+      ELSE ${lit(st.reported)} END`;
+  const action = e.action ?? (x.replaces ? "R" : "I");
+  const dimSel = dims.map((d, i) => (d.codes ? `c${i}.code` : `CAST(t.${ident(d.column)} AS VARCHAR)`) + ` AS ${ident(d.id)}`);
+  const joins = dims.map((d, i) => (d.codes ? `JOIN (SELECT DISTINCT CAST(value AS VARCHAR) AS value, CAST(code AS VARCHAR) AS code FROM ${ident(d.codes)}) c${i} ON c${i}.value = CAST(t.${ident(d.column)} AS VARCHAR)` : "")).join(" ");
+  const order = [...dims.map((d) => `t.${ident(d.column)}`), `t.${ident(e.time)}`].join(", ");
+  await s.run(`COPY (SELECT ${lit(e.structure)} AS STRUCTURE, ${lit(`${e.agency}:${e.id}(${e.version})`)} AS STRUCTURE_ID, ${lit(action)} AS ACTION,
+      ${dimSel.join(", ")}, CAST(t.${ident(e.time)} AS VARCHAR) AS TIME_PERIOD,
+      ${decimalSql(`t.${ident(e.measure)}`, x.baseUnit, e.unit_mult)} AS OBS_VALUE,
+      ${status} AS OBS_STATUS, ${lit(e.unit_measure)} AS UNIT_MEASURE, ${lit(String(e.unit_mult))} AS UNIT_MULT
+    FROM ${ident(e.table)} t ${joins} WHERE t.${ident(e.measure)} IS NOT NULL ORDER BY ${order})
+    TO ${lit(target)} (FORMAT csv, HEADER true, DELIMITER ',', QUOTE '"')`);
+  const rows = Number(await s.scalar(`SELECT count(*) FROM read_csv(${lit(target)}, header = true, all_varchar = true)`));
+  return { table: e.table, format: "sdmx-csv", file, rows, bytes: statSync(target).size, sha256: sha256(target) };
+}
