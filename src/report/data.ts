@@ -17,8 +17,13 @@ export interface Manifest {
   status: string;
   pipeline: { name: string; base_unit: string };
   steps: ManifestStep[];
-  outputs: { table: string; file: string; rows: number; step?: string; role?: string }[];
+  outputs: { table: string; file: string; rows: number; step?: string; role?: string; format?: string }[];
   [k: string]: unknown;
+}
+
+/** A Parquet output (the canonical copy; Arrow, CSV and SDMX-CSV copies have their own `format`). */
+export function isParquet(o: { file: string; format?: string }): boolean {
+  return (o.format === undefined || o.format === "parquet") && o.file.endsWith(".parquet");
 }
 
 export function readManifest(dir: string): Manifest {
@@ -36,13 +41,13 @@ export class RunReader {
 
   /** The relation that reads a published table (one file, or the files of a folder). */
   table(name: string): string {
-    const files = this.manifest.outputs.filter((o) => o.table === name).map((o) => path.join(this.dir, o.file));
+    const files = this.manifest.outputs.filter((o) => o.table === name && isParquet(o)).map((o) => path.join(this.dir, o.file));
     if (!files.length) throw new Error(`${this.dir}: no published table ${name}`);
     return `read_parquet([${files.map(lit).join(", ")}])`;
   }
 
   has(name: string): boolean {
-    return this.manifest.outputs.some((o) => o.table === name);
+    return this.manifest.outputs.some((o) => o.table === name && isParquet(o));
   }
 
   async all(sql: string): Promise<Record<string, unknown>[]> {

@@ -14,8 +14,10 @@ export async function renderSvg(spec: VlSpec): Promise<string> {
   const view = new vega.View(vega.parse(compiled), { renderer: "none" });
   try {
     const svg = await view.toSVG();
-    // A title element as well, for readers that do not use aria-label.
-    return svg.replace(/^<svg([^>]*)>/, (m) => `${m}<title>${escapeXml(spec.title)}</title>`);
+    // The description as the chart's text alternative (aria-label on the root, which vega's SVG
+    // renderer does not write), and a title element for readers that do not use aria-label.
+    return svg.replace(/^<svg([^>]*)>/, (_m, attrs: string) =>
+      `<svg${attrs} role="img" aria-label="${escapeXml(spec.description)}"><title>${escapeXml(spec.title)}</title>`);
   } finally {
     view.finalize();
   }
