@@ -69,7 +69,7 @@ export interface TableInfo {
   /** Produced by this step id (undefined for sources). */
   step?: string;
   /** Published in the run directory. */
-  publish: false | { partition_by?: string[] };
+  publish: false | { partition_by?: string[]; formats?: ("arrow" | "csv")[] };
   /** Already written into the run directory by the step (streamed output). */
   files?: OutputFile[];
 }
