@@ -11,6 +11,7 @@ import { registerReleases } from "./releases.js";
 import { registerPlan } from "./plan.js";
 import { registerDiff } from "./diff.js";
 import { registerDescribe } from "./describe.js";
+import { registerReport } from "./report.js";
 
 // Output piped into a program that stops reading (head, say) ends the command quietly.
 process.stdout.on("error", (e: NodeJS.ErrnoException) => {
@@ -36,6 +37,7 @@ registerPlan(program);
 registerReleases(program);
 registerDiff(program);
 registerDescribe(program);
+registerReport(program);
 
 program.parseAsync(process.argv).catch((e: unknown) => {
   process.stderr.write(`cairn: ${(e as Error).message ?? String(e)}\n`);

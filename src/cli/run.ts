@@ -27,15 +27,16 @@ export function registerRun(program: Command): void {
     .option("--against <dir>", "compare with this run directory (revisions) instead of the catalog's latest release", parsePath)
     .option("--reuse-from <dir>", "take unchanged steps from this run directory (default: the previous release)", parsePath)
     .option("--no-reuse", "compute every step, even those unchanged since the previous run")
+    .option("--no-report", "do not write report.html into the run directory")
     .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string;
-      release?: string; catalog?: string; provisional: boolean; against?: string; reuseFrom?: string; reuse: boolean }) => {
+      release?: string; catalog?: string; provisional: boolean; against?: string; reuseFrom?: string; reuse: boolean; report: boolean }) => {
       let report: RunReport;
       try {
         const lp = loadPipeline(file, parseSet(o.set));
         report = await runPipeline(lp, {
           out: o.out, replace: o.replace, progress: Progress.forTerminal(o.quiet || o.json),
           threads: o.threads, memoryLimit: o.memoryLimit, tempDirectory: o.tempDir,
-          release: o.release, catalog: o.catalog, provisional: o.provisional, against: o.against, reuseFrom: o.reuseFrom, reuse: o.reuse,
+          release: o.release, catalog: o.catalog, provisional: o.provisional, against: o.against, reuseFrom: o.reuseFrom, reuse: o.reuse, report: o.report,
         });
       } catch (e) {
         fail(e, o.json, exitCodeOf(e));

@@ -13,6 +13,7 @@ import { stepKind } from "../steps/registry.js";
 import type { OutputDecl, PlanContext, ReadDecl, StepKind, TableSchema } from "../steps/types.js";
 import { sourceSchema } from "./sources.js";
 import { SqlSandbox } from "./sandbox.js";
+import { exporterFor } from "../publish/exporters.js";
 
 /** Names of the tool's own tables and files in a run directory; no step may produce them. */
 export const RESERVED_NAMES = ["rejects", "audit", "manifest", "dictionary", "report", "run", "plan", "inputs"] as const;
@@ -134,7 +135,6 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
   }
 }
 
-const NUMERIC = /^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT)$/;
 
 /** Exports name published tables and their columns; code and label tables exist with their columns. */
 function checkExportsAndLabels(lp: LoadedPipeline, schemas: Map<string, TableSchema>, producer: Map<string, string>, steps: StepNode[], sources: SourceNode[]): string[] {
@@ -149,32 +149,17 @@ function checkExportsAndLabels(lp: LoadedPipeline, schemas: Map<string, TableSch
     if (src) src.config = true;
   };
   (p.exports ?? []).forEach((e, i) => {
-    const at = (k: string) => ["exports", i, k];
     const step = producer.get(e.table);
     const node = steps.find((n) => n.id === step);
     const decl = node?.outputs.find((o) => o.name === e.table);
-    if (!decl) fail(at("table"), `${JSON.stringify(e.table)} is not a table of a step (known: ${[...producer.keys()].join(", ")})`);
-    if (decl!.streamed || node!.step.publish === false) fail(at("table"), `${e.table} is not published as a table (streamed or publish: false)`);
-    const cols = new Map(decl!.columns.map((c) => [c.name, c.type]));
-    const need = (col: string, k: string) => { if (!cols.has(col)) fail(at(k), `${e.table} has no column ${col} (its columns: ${[...cols.keys()].join(", ")})`); };
-    for (const [id, d] of Object.entries(e.dimensions)) {
-      const col = typeof d === "string" ? d : d.column;
-      need(col, "dimensions");
-      if (typeof d !== "string" && d.codes) {
-        const cs = schemas.get(d.codes);
-        if (!cs) fail(at("dimensions"), `dimension ${id}: no table ${JSON.stringify(d.codes)} (a source or a step's table with columns value and code)`);
-        const missing = ["value", "code"].filter((c) => !cs!.columns.some((x) => x.name === c));
-        if (missing.length) fail(at("dimensions"), `dimension ${id}: code table ${d.codes} lacks column(s) ${missing.join(", ")} (contract: value, code, optional label)`);
-        markConfig(d.codes);
-      }
-    }
-    need(e.time, "time");
-    need(e.measure, "measure");
-    if (!NUMERIC.test(cols.get(e.measure)!)) fail(at("measure"), `${e.measure} (${cols.get(e.measure)}) is not numeric`);
-    if (e.estimated_when) {
-      need(e.estimated_when, "estimated_when");
-      if (cols.get(e.estimated_when) !== "BOOLEAN") fail(at("estimated_when"), `${e.estimated_when} is not a boolean column`);
-    }
+    if (!decl) fail(["exports", i, "table"], `${JSON.stringify(e.table)} is not a table of a step (known: ${[...producer.keys()].join(", ")})`);
+    if (decl!.streamed || node!.step.publish === false) fail(["exports", i, "table"], `${e.table} is not published as a table (streamed or publish: false)`);
+    exporterFor(e.format).check(e, {
+      columns: new Map(decl!.columns.map((c) => [c.name, c.type])),
+      schemas,
+      fail: (k, m) => fail(["exports", i, k], m),
+      reads: markConfig,
+    });
   });
   for (const [col, table] of Object.entries(p.labels ?? {})) {
     const ts = schemas.get(table);

@@ -19,6 +19,7 @@ import type { Session } from "../engine/session.js";
 import { ident, lit } from "../engine/sql.js";
 import { massFactor } from "../units.js";
 import { sha256, type OutputFile } from "./parquet.js";
+import type { ExportCheck, ExportContext, Exporter } from "./exporters.js";
 
 /** SDMX-ML IDType (SDMX 3.0 Technical Notes): a letter, then letters, digits, _ or -. */
 export const SdmxId = z.string().regex(/^[A-Za-z][A-Za-z0-9_-]*$/, "an SDMX id: a letter, then letters, digits, _ or -");
@@ -43,23 +44,13 @@ export const SdmxExport = z.object({
   measure: Name.describe("the column of OBS_VALUE"),
   unit_measure: z.string().min(1).describe("the UNIT_MEASURE code (e.g. T for tonnes)"),
   unit_mult: z.number().int().min(-6).max(15).default(0).describe("UNIT_MULT: values are divided by 10^unit_mult (3: thousands)"),
-  obs_status: z.object({ reported: Status.default("A"), estimated: Status.default("E"), forecast: Status.default("F"), provisional: Status.default("P") }).strict().optional(),
+  obs_status: z.object({ reported: Status.default("A"), estimated: Status.default("E"), forecast: Status.default("F"), provisional: Status.default("P"), missing: Status.default("O") }).strict().optional()
+    .describe("the OBS_STATUS code of each case (defaults A, E, F, P; O for a missing value, printed with an empty OBS_VALUE)"),
   estimated_when: Name.optional().describe("a boolean column that marks estimated values (default: mirrored, when the table has it)"),
   forecast_from: z.number().int().optional().describe("the first forecast year (default: the year after the newest data year)"),
 }).strict();
 export type SdmxExportT = z.output<typeof SdmxExport>;
 
-export interface SdmxContext {
-  session: Session;
-  dir: string;
-  baseUnit: string;
-  /** Step kind of the table's producer: modelled tables (cohort-model, yearly-path) are estimates. */
-  modelled: boolean;
-  newestDataYear: number | null;
-  provisional: boolean;
-  /** An earlier release exists: the default action is R. */
-  replaces: boolean;
-}
 
 /** The exact decimal text of a value at the base unit's resolution (1 g), divided by 10^mult. */
 export function decimalSql(expr: string, baseUnit: string, mult: number): string {
@@ -76,8 +67,9 @@ export function decimalSql(expr: string, baseUnit: string, mult: number): string
   return `(CASE WHEN ${g} = 0 THEN '0' ELSE ${sign} || ${int} || CASE WHEN ${frac} = '' THEN '' ELSE '.' || ${frac} END END)`;
 }
 
-export async function writeSdmx(x: SdmxContext, e: SdmxExportT, columns: string[]): Promise<OutputFile> {
+async function writeSdmx(e: SdmxExportT, x: ExportContext): Promise<OutputFile> {
   const s = x.session;
+  const columns = x.columns;
   const file = e.file ?? `sdmx/${e.table}.csv`;
   const target = path.join(x.dir, file);
   mkdirSync(path.dirname(target), { recursive: true });
@@ -93,10 +85,10 @@ export async function writeSdmx(x: SdmxContext, e: SdmxExportT, columns: string[
     const badCode = await s.all(`SELECT DISTINCT CAST(code AS VARCHAR) AS c FROM ${ident(d.codes)} WHERE NOT regexp_full_match(CAST(code AS VARCHAR), '[A-Za-z0-9_@$\\-]+') LIMIT 3`);
     if (badCode.length) throw new DataError(`export ${e.id}: code table ${d.codes} has code(s) ${badCode.map((r) => JSON.stringify(r.c)).join(", ")} that are not SDMX codes (letters, digits, _ @ $ -)`);
   }
-  const st = { reported: "A", estimated: "E", forecast: "F", provisional: "P", ...e.obs_status };
+  const st = { reported: "A", estimated: "E", forecast: "F", provisional: "P", missing: "O", ...e.obs_status };
   const estCol = e.estimated_when ?? (columns.includes("mirrored") ? "mirrored" : undefined);
   const forecastFrom = e.forecast_from ?? (x.newestDataYear !== null ? x.newestDataYear + 1 : null);
-  const status = `CASE WHEN FALSE THEN NULL ${x.provisional ? `WHEN TRUE THEN ${lit(st.provisional)}` : ""}
+  const status = `CASE WHEN t.${ident(e.measure)} IS NULL THEN ${lit(st.missing)} ${x.provisional ? `WHEN TRUE THEN ${lit(st.provisional)}` : ""}
       ${forecastFrom !== null ? `WHEN t.${ident(e.time)} >= ${forecastFrom} THEN ${lit(st.forecast)}` : ""}
       ${x.modelled ? `WHEN TRUE THEN ${lit(st.estimated)}` : ""}
       ${estCol ? `WHEN coalesce(t.${ident(estCol)}, FALSE) THEN ${lit(st.estimated)}` : ""}
@@ -109,8 +101,42 @@ export async function writeSdmx(x: SdmxContext, e: SdmxExportT, columns: string[
       ${dimSel.join(", ")}, CAST(t.${ident(e.time)} AS VARCHAR) AS TIME_PERIOD,
       ${decimalSql(`t.${ident(e.measure)}`, x.baseUnit, e.unit_mult)} AS OBS_VALUE,
       ${status} AS OBS_STATUS, ${lit(e.unit_measure)} AS UNIT_MEASURE, ${lit(String(e.unit_mult))} AS UNIT_MULT
-    FROM ${ident(e.table)} t ${joins} WHERE t.${ident(e.measure)} IS NOT NULL ORDER BY ${order})
+    FROM ${ident(e.table)} t ${joins} ORDER BY ${order})
     TO ${lit(target)} (FORMAT csv, HEADER true, DELIMITER ',', QUOTE '"')`);
   const rows = Number(await s.scalar(`SELECT count(*) FROM read_csv(${lit(target)}, header = true, all_varchar = true)`));
   return { table: e.table, format: "sdmx-csv", file, rows, bytes: statSync(target).size, sha256: sha256(target) };
 }
+
+const NUMERIC = /^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT)$/;
+
+/** Plan-stage checks: every column named exists, code tables have value and code, the measure is numeric. */
+function checkSdmx(e: SdmxExportT, c: ExportCheck): void {
+  const need = (col: string, k: string) => {
+    if (!c.columns.has(col)) c.fail(k, `${e.table} has no column ${col} (its columns: ${[...c.columns.keys()].join(", ")})`);
+  };
+  for (const [id, d] of Object.entries(e.dimensions)) {
+    need(typeof d === "string" ? d : d.column, "dimensions");
+    if (typeof d !== "string" && d.codes) {
+      const cs = c.schemas.get(d.codes);
+      if (!cs) c.fail("dimensions", `dimension ${id}: no table ${JSON.stringify(d.codes)} (a source or a step's table with columns value and code)`);
+      const missing = ["value", "code"].filter((k) => !cs.columns.some((x) => x.name === k));
+      if (missing.length) c.fail("dimensions", `dimension ${id}: code table ${d.codes} lacks column(s) ${missing.join(", ")} (contract: value, code, optional label)`);
+      c.reads(d.codes);
+    }
+  }
+  need(e.time, "time");
+  need(e.measure, "measure");
+  if (!NUMERIC.test(c.columns.get(e.measure)!)) c.fail("measure", `${e.measure} (${c.columns.get(e.measure)}) is not numeric`);
+  if (e.estimated_when) {
+    need(e.estimated_when, "estimated_when");
+    if (c.columns.get(e.estimated_when) !== "BOOLEAN") c.fail("estimated_when", `${e.estimated_when} is not a boolean column`);
+  }
+}
+
+export const sdmxCsv: Exporter<SdmxExportT> = {
+  format: "sdmx-csv",
+  schema: SdmxExport as unknown as z.ZodType<SdmxExportT>,
+  label: (e) => `${e.agency}:${e.id}`,
+  check: checkSdmx,
+  write: writeSdmx,
+};

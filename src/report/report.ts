@@ -18,6 +18,8 @@ export interface ReportOptions {
   against?: string;
   /** Progress lines (each chart rendered, …). */
   progress?: (msg: string) => void;
+  /** The directory named in the report (default runDir): the runner renders in staging and names the final place. */
+  displayDir?: string;
 }
 
 /** Checks that `dir` is a cairn run directory; its manifest, or an error (exit 2) saying what is wrong. */
@@ -96,7 +98,7 @@ export async function renderReport(runDir: string, opts: ReportOptions = {}): Pr
 </head>
 <body>
 <main>
-${titleSection(m, runDir)}
+${titleSection(m, opts.displayDir ?? runDir)}
 ${glance(m, rev, nCharts)}
 <nav class="toc" aria-label="Contents">${toc}</nav>
 ${inputs}

@@ -8,6 +8,7 @@ export function reportText(r: RunReport): string {
   for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rows_loaded} rows loaded, ${s.rows_rejected} rejected, ${s.rows_filtered} filtered out${s.reused ? " (unchanged, not read again)" : ""}`);
   if (r.reused.length) lines.push(`  re-used unchanged from the previous run: ${r.reused.join(", ")}`);
   for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
+  if (r.report) lines.push(`  wrote ${r.report} (open it in a browser: inputs, audit, charts, revisions, method)`);
   if (r.revisions.length) lines.push(`  revisions against the previous release: ${r.revisions.map((x) => `${x.table} ${x.rows}`).join(", ")}`);
   if (r.audit) {
     lines.push(`audit: ${r.audit.errors} error item(s), ${r.audit.warnings} warning item(s) failed`);

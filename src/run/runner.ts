@@ -18,7 +18,7 @@ import type { LoadedPipeline } from "../spec/load.js";
 import { writeParquet, type OutputFile } from "../publish/parquet.js";
 import { writeArrow, writeCsv } from "../publish/arrow.js";
 import { describeTable, parquetMetadata, tableUnits, type DictTable } from "../publish/dictionary.js";
-import { writeSdmx } from "../publish/sdmx.js";
+import { exporterFor } from "../publish/exporters.js";
 import { sha256 } from "../publish/parquet.js";
 import { checkTarget, RunDir } from "../publish/rundir.js";
 import { InputWatch } from "../sources/verify.js";
@@ -33,6 +33,7 @@ import { readPrevious, reusableSteps, type PreviousRun } from "./reuse.js";
 import { loadSources, reuseStep, runStep } from "./steps.js";
 import { newestDataYear, publishRevisions } from "./revise.js";
 import { reportText } from "./report-text.js";
+import { renderReport } from "../report/report.js";
 
 const require = createRequire(import.meta.url);
 export const TOOL_VERSION: string = (require("../../package.json") as { version: string }).version;
@@ -55,6 +56,8 @@ export interface RunOptions extends SessionOptions {
   reuseFrom?: string;
   /** Take over unchanged steps (default true when a previous run is known). */
   reuse?: boolean;
+  /** Write report.html into the run directory (default true). */
+  report?: boolean;
 }
 
 export type SourceReport = Omit<SourceResult, "files"> & { fingerprint?: string; method_fingerprint?: string; reused?: boolean };
@@ -72,6 +75,8 @@ export interface RunReport {
   rejects: number;
   audit: AuditSummary | null;
   timings_s: Record<string, number>;
+  /** The HTML report written into the run directory (relative path), unless turned off. */
+  report?: string;
 }
 
 function utcStamp(d: Date): string {
@@ -308,13 +313,14 @@ export class Run {
   private async exports(): Promise<void> {
     const newest = await newestDataYear(this);
     for (const e of this.lp.pipeline.exports ?? []) {
-      this.progress.info(`exporting ${e.table} as ${e.format} (${e.agency}:${e.id})`);
+      const x = exporterFor(e.format);
+      this.progress.info(`exporting ${e.table} as ${e.format} (${x.label(e)})`);
       const node = this.plan.steps.find((n) => n.id === this.plan.producer.get(e.table))!;
       const columns = node.outputs.find((o) => o.name === e.table)!.columns.map((c) => c.name);
-      const f = await writeSdmx({
+      const f = await x.write(e, {
         session: this.s, dir: this.rd.staging, baseUnit: this.lp.pipeline.base_unit, modelled: ["cohort-model", "yearly-path"].includes(node.kind.kind),
-        newestDataYear: newest, provisional: Boolean(this.opts.provisional), replaces: Boolean(this.catalog && this.previous),
-      }, e, columns);
+        newestDataYear: newest, provisional: Boolean(this.opts.provisional), replaces: Boolean(this.catalog && this.previous), columns,
+      });
       this.outputs.push({ ...f, step: node.id, role: "export" });
     }
   }
@@ -364,10 +370,12 @@ export class Run {
     const manifest = this.manifest(status, code, message, summary, rejects, engine);
     writeFileSync(path.join(rd.staging, "manifest.json"), JSON.stringify(manifest, null, 2) + "\n");
     s.close();
+    if (this.opts.report !== false) await this.writeReport(status);
     const report: RunReport = {
       status, exit_code: code, ...(message ? { error: message } : {}), run_dir: path.resolve(rd.target),
       ...(this.opts.release ? { release: this.opts.release } : {}), outputs: this.outputs,
       sources: manifest.sources, reused: [...this.reused], revisions: this.revisionCounts, rejects, audit: summary, timings_s: this.timings,
+      ...(this.opts.report !== false ? { report: "report.html" } : {}),
     };
     const failedDir = path.resolve(rd.target) + ".failed";
     writeFileSync(path.join(rd.staging, "run.log"), this.progress.log() + "\n" + reportText({ ...report, run_dir: status === "ok" ? report.run_dir : failedDir }));
@@ -376,6 +384,16 @@ export class Run {
       if (this.catalog) this.catalog.publish(this.releaseEntry(manifest, summary, engine));
     } else report.run_dir = rd.fail();
     return report;
+  }
+
+  /** report.html, rendered from the staging directory's manifest and Parquet files before the swap. */
+  private async writeReport(status: "ok" | "failed"): Promise<void> {
+    const t0 = performance.now();
+    this.progress.info("writing report.html");
+    const target = path.resolve(this.rd.target) + (status === "ok" ? "" : ".failed");
+    const html = await renderReport(this.rd.staging, { displayDir: target, progress: (m) => this.progress.info(`report: ${m}`) });
+    writeFileSync(path.join(this.rd.staging, "report.html"), html);
+    this.timings.report = Number(((performance.now() - t0) / 1000).toFixed(3));
   }
 
   private releaseEntry(m: ReturnType<Run["manifest"]>, summary: AuditSummary, engine: string): ReleaseEntry {

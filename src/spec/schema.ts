@@ -2,7 +2,7 @@
 import { z } from "zod";
 import { MassUnit, Name, Severity, UnitText } from "./common.js";
 import { STEP_KINDS, stepSchemaFor } from "../steps/registry.js";
-import { SdmxExport } from "../publish/sdmx.js";
+import { ExportSpec, EXPORTERS } from "../publish/exporters.js";
 
 export const ColumnType = z.enum(["text", "integer", "number", "quantity", "boolean"]);
 
@@ -93,7 +93,7 @@ export const PipelineBase = z
     catalog: z.string().min(1).optional().describe("a folder of releases (relative to the pipeline file); `cairn run --release ID` publishes into it"),
     audit: AuditOptions.optional(),
     sources: z.record(Name, Source),
-    exports: z.array(SdmxExport).optional().describe("files for statistical offices made from published tables (format sdmx-csv)"),
+    exports: z.array(ExportSpec).optional().describe(`files for statistical offices made from published tables (format: ${EXPORTERS.map((x) => x.format).join(", ")})`),
     labels: z.record(Name, Name).optional().describe("key column → a table with the column (or code) and label (or name): labels in the data dictionary"),
     steps: z.array(z.unknown()).describe("the steps, run in order"),
   })

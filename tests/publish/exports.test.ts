@@ -7,7 +7,7 @@
  * read with hyparquet.
  */
 import { beforeAll, describe, expect, it } from "vitest";
-import { readFileSync } from "node:fs";
+import { readFileSync, writeFileSync } from "node:fs";
 import path from "node:path";
 import { parse } from "csv-parse/sync";
 import { tableFromIPC } from "@uwdata/flechette";
@@ -97,6 +97,22 @@ describe("SDMX-CSV 2.0 (SDMX-CSV format specification v2.0.0)", () => {
     const rows = parse(readFileSync(path.join(dir, "c", "r2", "sdmx", "consumption.csv"), "utf8"), { columns: true }) as Record<string, string>[];
     expect(new Set(rows.map((r) => r.ACTION))).toEqual(new Set(["R"]));
     expect(new Set(rows.map((r) => r.OBS_STATUS))).toEqual(new Set(["P"]));
+  }, 120_000);
+
+  it("a missing value is kept as an empty OBS_VALUE with OBS_STATUS O, never dropped", () => {
+    // SDMX-CSV v2.0.0: an empty field is an absent value; CL_OBS_STATUS O = missing value (from memory).
+    const dir = tmp("cairn-sdmx-missing-");
+    writeFileSync(path.join(dir, "m.csv"), "region,year,value\nA,2020,1.5\nA,2021,\nB,2020,2\n");
+    writeFileSync(path.join(dir, "p.yaml"), [
+      "name: missing", "base_unit: t", "sources:", "  m:", "    path: m.csv", "    unit: t", "    columns:",
+      "      region: { type: text, key: true }", "      year: { type: integer, key: true }", "      value: { type: quantity, nullable: true }",
+      "steps:", "  - id: t", "    kind: sql", "    inputs: [m]", "    query: SELECT region, year, value FROM m", "    columns: [region, year, value]", "    keys: [region, year]",
+      "exports:", "  - { format: sdmx-csv, table: t, agency: X, id: DF, dimensions: { REF_AREA: region }, measure: value, unit_measure: T }",
+    ].join("\n") + "\n");
+    const r = cli(["run", path.join(dir, "p.yaml"), "--out", path.join(dir, "run"), "--quiet"]);
+    expect(r.code, r.stderr).toBe(0);
+    const rows = parse(readFileSync(path.join(dir, "run", "sdmx", "t.csv"), "utf8"), { columns: true }) as Record<string, string>[];
+    expect(rows.map((x) => [x.REF_AREA, x.TIME_PERIOD, x.OBS_VALUE, x.OBS_STATUS])).toEqual([["A", "2020", "1.5", "A"], ["A", "2021", "", "O"], ["B", "2020", "2", "A"]]);
   }, 120_000);
 });
 

@@ -11,7 +11,7 @@ import { renderReport } from "../../src/report/report.js";
 import { ROOT, tmp } from "../helpers.js";
 import { charts, demoRun, tableRows, twoReleases } from "./helpers.js";
 
-const REPORT_CLI = path.join(ROOT, "tests", "report", "report-cli.mjs");
+const REPORT_CLI = path.join(ROOT, "dist", "cli", "main.js");
 const SVG_NAMESPACES = new Set(["http://www.w3.org/2000/svg", "http://www.w3.org/1999/xlink"]);
 const FACTOR: Record<string, number> = { thousand: 1e3, million: 1e6, billion: 1e9 };
 /** The scale of a chart's values, from its title ("…, million t)"). */
@@ -189,6 +189,11 @@ describe("revisions", () => {
 });
 
 describe("cairn report (command)", () => {
+  it("every run writes report.html into its run directory: the document cairn report renders", async () => {
+    const written = readFileSync(path.join(run, "report.html"), "utf8");
+    expect(written).toBe(await renderReport(run));
+  });
+
   it("writes RUN_DIR/report.html and prints its path; --out elsewhere", () => {
     const r = spawnSync(process.execPath, [REPORT_CLI, "report", run, "--quiet"], { encoding: "utf8" });
     expect(r.status).toBe(0);
