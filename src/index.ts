@@ -11,3 +11,6 @@ export type { StepKind, StepContext, TableInfo } from "./steps/types.js";
 export { CairnError, PipelineError, DataError, AuditFailure, EXIT } from "./errors.js";
 export * from "./cohort/index.js";
 export { generateSynthetic } from "./data/synth.js";
+export { readRunTable } from "./publish/arrow.js";
+export { EXPORTERS, type Exporter, type ExportContext, type ExportCheck } from "./publish/exporters.js";
+export { renderReport, type ReportOptions } from "./report/report.js";

@@ -84,6 +84,8 @@ export interface RevisionRequest {
   changedSources: { name: string; schema: TableSchema; hasChanges: boolean }[];
   /** Without row-level changes (comparing two run directories): sources known changed from the manifests, named on every changed figure. */
   coarseSources?: string[];
+  /** Tables loaded in the session (for the groups tables of grouped keys). */
+  tables?: Set<string>;
 }
 
 /** The revisions table of one published table; returns its row count. */
@@ -109,7 +111,13 @@ export async function revisions(s: Session, r: RevisionRequest): Promise<number>
   const explains = r.changedSources.filter((c) => c.hasChanges).map((c) => {
     const shared = c.schema.columns.map((x) => x.name).filter((x) => keys.includes(x) && x !== "year");
     const yearCond = c.schema.columns.some((x) => x.name === "year") && keys.includes("year") ? "c.year <= d.year" : "TRUE";
-    const cond = [yearCond, ...shared.map((k) => `CAST(c.${ident(k)} AS VARCHAR) = CAST(d.${ident(k)} AS VARCHAR)`)].join(" AND ");
+    const cond = [yearCond, ...shared.map((k) => {
+      // A key that holds groups of the source's values (an aggregate's regions → world) matches through its groups table.
+      const g = r.schema.columns.find((x) => x.name === k)?.groups;
+      if (!g) return `CAST(c.${ident(k)} AS VARCHAR) = CAST(d.${ident(k)} AS VARCHAR)`;
+      if (!r.tables?.has(g.table)) return "TRUE"; // the groups table is not at hand: any value of this key may be reached
+      return `EXISTS (SELECT 1 FROM ${ident(g.table)} g WHERE CAST(g.${ident(g.group)} AS VARCHAR) = CAST(d.${ident(k)} AS VARCHAR) AND CAST(g.${ident(g.member)} AS VARCHAR) = CAST(c.${ident(k)} AS VARCHAR))`;
+    })].join(" AND ");
     return `CASE WHEN EXISTS (SELECT 1 FROM ${ident(changesTable(c.name))} c WHERE ${cond}) THEN ${lit(c.name)} END`;
   });
   // A changed configuring row (a lifetime of one product, say) reaches the figures whose shared keys agree.

@@ -51,6 +51,7 @@ export async function publishRevisions(run: Run): Promise<void> {
         table: o.name, step: node.id, schema: o, previousFiles, methodChanged: optionsChanged,
         changedConfig: configs.map((c) => ({ name: c, schema: run.plan.schemas.get(c)! })),
         changedSources: ups.filter((u) => changed.has(u)).map((u) => ({ name: u, schema: run.plan.schemas.get(u)!, hasChanges: changed.get(u)! && run.outputs.some((f) => f.table === `changes:${u}`) })),
+        tables: new Set(run.ctx.tables.keys()),
       });
       const written = await writeParquet(s, { table: revisionsTable(o.name), sql: `SELECT * FROM ${ident(revisionsTable(o.name))}`, dir: run.rd.staging, name: `revisions/${o.name}` });
       run.outputs.push(...written.map((f) => ({ ...f, table: `revisions:${o.name}`, step: node.id, role: "revisions" })));

@@ -44,7 +44,8 @@ export const aggregateStep = defineStep({
     if (!values.length) ctx.fail("values", `table ${o.input} has no DOUBLE column to sum; name the columns in values`);
     const notNumbers = input.columns.filter((c) => values.includes(c.name) && !/^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT|UBIGINT|UINTEGER|USMALLINT|UTINYINT)$/.test(c.type));
     if (notNumbers.length) ctx.fail("values", `${notNumbers.map((c) => `${c.name} (${c.type})`).join(", ")} cannot be summed; values are numeric columns`);
-    return [{ name: o.id, role: "main", description: `${o.input} summed over the groups of ${o.by} in ${o.groups}`, keys, columns: sel }];
+    const columns = sel.map((c) => (c.name === o.by ? { ...c, description: `group of ${o.by} (${o.groups}: member → group)`, groups: { table: o.groups, member: "member", group: "group" } } : c));
+    return [{ name: o.id, role: "main", description: `${o.input} summed over the groups of ${o.by} in ${o.groups}`, keys, columns }];
   },
   async check(ctx, o) {
     if (!ctx.tables.has(o.groups)) return;

@@ -27,6 +27,8 @@ export interface ColumnDecl {
   /** What the column holds, in one sentence (the data dictionary's text). */
   description: string;
   unit?: ColumnUnit;
+  /** The column holds groups of the upstream column of the same name, given by a table (member → group). */
+  groups?: { table: string; member: string; group: string };
 }
 
 export interface TableSchema {

@@ -158,6 +158,14 @@ describe("revisions", () => {
     rep = await renderReport(rel.r2);
   });
 
+  it("a key holding groups (regions → region groups) traces its revisions to the changed source rows", async () => {
+    // Production of ALD and BRV changed from 2018: every revised group figure has that cause (common practice, no source).
+    const rows = await s.all(`SELECT cause, min(year) AS y0, count(*) AS n FROM read_parquet(${lit(path.join(rel.r2, "revisions", "consumption_by_group.parquet"))}) GROUP BY cause`);
+    expect(rows.map((r) => r.cause)).toEqual(["input"]);
+    expect(Number(rows[0]!.y0)).toBe(2018);
+    expect(Number(rows[0]!.n)).toBeGreaterThan(0);
+  });
+
   it("shows the release's own revisions/*.parquet: counts per table and the largest with their causes", async () => {
     expect(rep).toMatch(/release <strong>r2<\/strong>/);
     expect(rep).toContain("Revisions kept by this run");
