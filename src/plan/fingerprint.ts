@@ -80,3 +80,15 @@ export function fingerprints(plan: Plan, toolVersion: string, fileHashes: Map<st
   }
   return out;
 }
+
+/**
+ * The fingerprint of the whole plan: every source's and step's fingerprint, in plan order. Shards
+ * of one sharded run must share it (same pipeline, options, tool version and input contents),
+ * and the merge recomputes it from the files as they are then.
+ */
+export function planFingerprint(plan: Plan, prints: Map<string, NodePrint>): string {
+  return sha("plan", canonical({
+    sources: plan.sources.map((s) => [s.name, prints.get(s.name)?.fingerprint ?? null]),
+    steps: plan.steps.map((n) => [n.id, prints.get(n.id)?.fingerprint ?? null]),
+  }));
+}

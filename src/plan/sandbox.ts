@@ -83,6 +83,17 @@ export class SqlSandbox {
     return j.statements![0];
   }
 
+  /** The parse tree of one SELECT (json_serialize_sql's statement), for the shard analysis (plan/sql-keys.ts). */
+  async parseTree(sql: string): Promise<Record<string, unknown>> {
+    return (await this.parse(sql)) as Record<string, unknown>;
+  }
+
+  /** Lower-case names of the engine's aggregate functions. */
+  async aggregateNames(): Promise<Set<string>> {
+    const r = await this.conn.runAndReadAll(`SELECT DISTINCT lower(function_name) AS f FROM duckdb_functions() WHERE function_type = 'aggregate'`);
+    return new Set(r.getRowObjectsJS().map((x) => String(x.f)));
+  }
+
   /**
    * Checks a step's query: one SELECT reading only `inputs` (and its CTEs), no table function
    * but ROW_FUNCTIONS. `where` prefixes messages (file:line:col: key path).
