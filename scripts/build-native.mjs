@@ -1,8 +1,10 @@
-// Builds the optional native hand-off reader (native/handoff.c → build/cairn_handoff.node)
-// with the C compiler and Node's own headers, linked to the libduckdb.so that
-// @duckdb/node-bindings ships. Run by `npm ci` / `npm install` (prepare) and `npm run build`.
-// It never fails the install: without a compiler, headers or a matching DuckDB library it
-// says why and the hand-off uses the bindings' per-chunk calls instead (slower, same result).
+// Builds the optional native libraries with the C compiler and Node's own headers: the hand-off
+// reader (native/handoff.c → build/cairn_handoff.node), linked to the libduckdb.so that
+// @duckdb/node-bindings ships; the cohort kernels (native/kernels.c → build/cairn_kernels.node);
+// the file-system exchange (native/fsx.c → build/cairn_fsx.node). Run by `npm ci` /
+// `npm install` and `npm run build`. It never fails the install: without a compiler, headers or
+// a matching DuckDB library it says why, and the hand-off uses the bindings' per-chunk calls
+// (slower, same result) and the cohort model the WebAssembly kernels.
 import { execFileSync } from "node:child_process";
 import { existsSync, mkdirSync, readFileSync, rmSync, writeFileSync } from "node:fs";
 import { createRequire } from "node:module";
@@ -39,6 +41,22 @@ rmSync(`${out}.json`, { force: true });
 const fsx = path.join(root, "build", "cairn_fsx.node");
 rmSync(fsx, { force: true });
 const inc = headers();
+// The cohort kernels (native/kernels.c): AVX-512 or AVX2 code chosen at load time; needs only
+// Node's headers and a C compiler (x86-64). No fused multiply-add beyond those written.
+const kernels = path.join(root, "build", "cairn_kernels.node");
+rmSync(kernels, { force: true });
+if (process.env.CAIRN_NATIVE === "0") say("CAIRN_NATIVE=0: the native kernels are not built; the WebAssembly kernels run");
+else if (!inc) say("Node's headers (node_api.h) not found; the native kernels are not built, the WebAssembly kernels run");
+else if (process.arch !== "x64") say(`the native kernels are written for x86-64 (this is ${process.arch}); the WebAssembly kernels run`);
+else {
+  mkdirSync(path.dirname(kernels), { recursive: true });
+  try {
+    execFileSync(process.env.CC ?? "cc", ["-shared", "-fPIC", "-O3", "-ffp-contract=off", "-Wall", "-I", inc, path.join(root, "native", "kernels.c"), "-o", kernels], { stdio: "inherit" });
+    say(`built ${path.relative(root, kernels)}`);
+  } catch (e) {
+    say(`kernels: ${e.message.split("\n")[0]}; not built, the WebAssembly kernels run`);
+  }
+}
 // The file-system exchange (native/fsx.c): needs only Node's headers and a C compiler.
 if (process.env.CAIRN_NATIVE !== "0" && inc && process.platform === "linux") {
   mkdirSync(path.dirname(fsx), { recursive: true });
@@ -61,14 +79,6 @@ else {
     writeFileSync(`${out}.json`, JSON.stringify({ bindings: bindingsVersion(), node: process.version }) + "\n");
     say(`built ${path.relative(root, out)}`);
   } catch (e) {
-    /** The version of @duckdb/node-bindings whose handle layout the library is built for. */
-function bindingsVersion() {
-  const require = createRequire(path.join(root, "package.json"));
-  return JSON.parse(readFileSync(require.resolve("@duckdb/node-bindings/package.json"), "utf8")).version;
-}
-
-rmSync(out, { force: true });
-rmSync(`${out}.json`, { force: true });
     say(`${cc} failed (${e.message.split("\n")[0]}); not built, the hand-off uses the bindings' calls`);
   }
 }

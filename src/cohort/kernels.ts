@@ -1,8 +1,11 @@
-import { wasmProduct, wasmSolve } from "./wasm/index.js";
+import { kernelVariant, wasmInflow, wasmProduct, wasmSolve } from "./wasm/index.js";
+import { nativeKernels } from "./native.js";
 
 /**
  * Batched numeric kernels over many series at once (row-major series × years Float64Arrays).
- * A cell is one series × year × cohort term.
+ * A cell is one series × year × cohort term. Three implementations with one contract: native
+ * (native/kernels.c, AVX-512 or AVX2, when built), WebAssembly SIMD (wasm/kernels.wat, always
+ * there) and plain TypeScript (the reference the others are tested against).
  */
 
 /** Rounds up to a multiple of 4. */
@@ -16,17 +19,54 @@ export function pad4(n: number): number {
  * `inp` and `out` are n × T row-major.
  */
 export function cohortProduct(inp: Float64Array, n: number, T: number, M: Float64Array, out: Float64Array): void {
-  if (useWasm) return wasmProduct(inp, n, T, M, out);
+  if (kind === "native") return nativeKernels()!.product(inp, M, out, n, T);
+  if (kind === "wasm") return wasmProduct(inp, n, T, M, out);
   cohortProductTS(inp, n, T, M, out);
 }
 
-/** Which kernels run: WebAssembly SIMD (default) or plain TypeScript (CAIRN_KERNELS=ts, or for comparison in tests). */
-let useWasm = process.env.CAIRN_KERNELS !== "ts";
-export function setKernels(kind: "wasm" | "ts"): void {
-  useWasm = kind === "wasm";
+export type KernelKind = "native" | "wasm" | "ts";
+
+/**
+ * Which kernels run: native when built (the default), else WebAssembly SIMD; CAIRN_KERNELS=wasm
+ * or =ts (or setKernels, e.g. to compare them in tests) chooses one. "native" where the native
+ * kernels are not built means WebAssembly.
+ */
+let kind: KernelKind = pick((process.env.CAIRN_KERNELS as KernelKind | undefined) ?? "native");
+function pick(k: KernelKind): KernelKind {
+  if (k === "ts") return "ts";
+  if (k === "wasm") return "wasm";
+  return nativeKernels() ? "native" : "wasm";
 }
+export function setKernels(k: KernelKind): void {
+  kind = pick(k);
+}
+/** True when compiled kernels run (native or WebAssembly), false for the TypeScript ones. */
 export function wasmKernels(): boolean {
-  return useWasm;
+  return kind !== "ts";
+}
+export function kernelKind(): KernelKind {
+  return kind;
+}
+/** The kernels in use, in words: "native AVX-512", "WebAssembly relaxed-simd", "TypeScript". */
+export function kernelDescription(): string {
+  if (kind === "native") return `native ${nativeKernels()!.info().isa === "avx512" ? "AVX-512" : "AVX2"}`;
+  if (kind === "wasm") return `WebAssembly ${kernelVariant()}`;
+  return "TypeScript";
+}
+
+/**
+ * The inflow-driven model in one call (compiled kernels: native or WebAssembly): outflow =
+ * Σ_c I(c)·P[c, t] (+ initOut), stock by the balance from stock0, stock change. Writes into
+ * `out` where given, else into new arrays.
+ */
+export function inflowKernel(inp: Float64Array, n: number, T: number, P: Float64Array, initOut: Float64Array | null, stock0: Float64Array | null,
+  out: { outflow?: Float64Array; stock?: Float64Array; stockChange?: Float64Array } = {}): { outflow: Float64Array; stock: Float64Array; stockChange: Float64Array } {
+  if (kind !== "native") return wasmInflow(inp, n, T, P, initOut, stock0, out);
+  const outflow = out.outflow ?? new Float64Array(n * T);
+  const stock = out.stock ?? new Float64Array(n * T);
+  const stockChange = out.stockChange ?? new Float64Array(n * T);
+  nativeKernels()!.inflow(inp, P, outflow, stock, stockChange, initOut, stock0, n, T);
+  return { outflow, stock, stockChange };
 }
 
 /** The plain TypeScript kernel, 4 × 4 register blocking. */
@@ -86,7 +126,8 @@ function padRows(A: Float64Array, n: number, T: number, np: number, Tp: number):
  */
 export function stockDrivenSolve(Z: Float64Array, n: number, T: number, St: Float64Array, init: Float64Array | null,
   clamp: boolean, inflow: Float64Array, achieved: Float64Array): void {
-  if (useWasm) return wasmSolve(Z, n, T, St, init, clamp, inflow, achieved);
+  if (kind === "native") return nativeKernels()!.solve(Z, St, init, inflow, achieved, n, T, clamp);
+  if (kind === "wasm") return wasmSolve(Z, n, T, St, init, clamp, inflow, achieved);
   stockDrivenSolveTS(Z, n, T, St, init, clamp, inflow, achieved);
 }
 

@@ -7,8 +7,7 @@
  */
 import type { Lifetime } from "./distributions/types.js";
 import { leavingAt, leavingVector, sigmaAt, survivalVector, ageHorizon, NEGLIGIBLE_SHARE } from "./discretise.js";
-import { cohortProduct, stockDrivenSolve, wasmKernels } from "./kernels.js";
-import { wasmInflow } from "./wasm/index.js";
+import { cohortProduct, inflowKernel, stockDrivenSolve, wasmKernels } from "./kernels.js";
 import { balanceFromOutflow } from "./balance.js";
 
 /** Survival and leaving shares of one lifetime, computed once and shared. */
@@ -271,8 +270,8 @@ export function inflowDriven(g: CohortGroup, inflow: Float64Array, n: number, op
   const rate = g.exponentialRate;
   if (rate !== null) return firstOrderDecay(inflow, n, T, rate, opts);
   if (wasmKernels()) {
-    // One WebAssembly call: outflow, the initial stock's outflow, and the balance.
-    const w = wasmInflow(inflow, n, T, g.P, init?.outflow ?? null, init?.stock0 ?? null, opts.out);
+    // One kernel call (native or WebAssembly): outflow, the initial stock's outflow, and the balance.
+    const w = inflowKernel(inflow, n, T, g.P, init?.outflow ?? null, init?.stock0 ?? null, opts.out);
     const r: ModelResult = { inflow, ...w };
     if (opts.indicators) addIndicators(g, r, n, init);
     if (init) r.initialTooOld = init.tooOld;
