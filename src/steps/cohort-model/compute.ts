@@ -49,7 +49,7 @@ const gather = (src: Float64Array, sids: readonly number[], width: number) => {
 };
 
 /** The stock in place of a group by age (gn × A): given by age, steady-state shares of a total, or carried. */
-function amountsOf(inp: Inputs, g: Group, A: number): Float64Array | null {
+export function amountsOf(inp: Inputs, g: Group, A: number): Float64Array | null {
   if (!g.initCurves.length) return null;
   if (inp.carried) {
     const { stock, from } = inp.carried;

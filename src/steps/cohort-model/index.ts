@@ -21,6 +21,7 @@ import { compute } from "./compute.js";
 import { declareOutputs, writeLifetimes, writeTables } from "./outputs.js";
 import { byCohortAudit, lifetimeAudits, materialAudits, modelAudits } from "./audits.js";
 import { hasColumns } from "../columns.js";
+import { declareUncertainty, runUncertainty } from "./uncertainty.js";
 
 export const cohortModelStep = defineStep({
   kind: "cohort-model",
@@ -64,7 +65,7 @@ export const cohortModelStep = defineStep({
       if (fo.keys.join(",") !== o.keys.join(",")) ctx.fail("continues", `step ${fo.id} has keys [${fo.keys.join(", ")}]; a continued model keeps them: [${o.keys.join(", ")}]`);
       if (fo.content && !o.content) ctx.fail("continues", `step ${fo.id} tracks material content; give content: here too, so the new cohorts carry theirs`);
     }
-    return declareOutputs(ctx, o);
+    return [...declareOutputs(ctx, o), ...declareUncertainty(ctx, o)];
   },
   async check(ctx, step) {
     await checkParamTables(ctx, step as O);
@@ -75,12 +76,17 @@ export const cohortModelStep = defineStep({
     const inp = await readInputs(ctx, o);
     ctx.progress.info(`step ${o.id}: ${inp.n} series × ${inp.T} years (${inp.y0}–${inp.y1}), ${o.mode}${o.continues ? `, continuing ${o.continues.step}` : ""}`);
     const lt = await paramRows(s, o.lifetimes, o.keys);
-    const cache = new CurveCache(o, await curveTable(s, o.curves), inp.T + 1);
+    const curveTables = await curveTable(s, o.curves);
+    const cache = new CurveCache(o, curveTables, inp.T + 1);
     const { groups, A } = buildGroups(o, inp, lt, cache);
     const content = o.content ? await paramRows(s, o.content, o.keys) : null;
     const materials = [...new Set([...(content?.rows.map((r) => String(r.raw.material)) ?? []), ...(inp.carried?.stock.materials ?? [])])].sort();
     const res = await compute(ctx, o, inp, groups, A, content, materials);
     const t = await writeTables(ctx, o, inp, res);
+    if (o.uncertainty) {
+      const rows = new Map(cache.used().map(([i, c]) => [c, i]));
+      await runUncertainty(ctx, o, inp, groups, A, (c) => rows.get(c) ?? -1, lt, curveTables, content, materials, cache.length, res);
+    }
     await modelAudits(ctx, o, inp, res, t.raw);
     const ltMeta = await writeLifetimes(ctx, o, cache.used(), lt.rows, lt.keyCols, Math.min(cache.length, inp.T + A));
     await lifetimeAudits(ctx, o, ltMeta, inp.T, inp.y0, inp.y1);

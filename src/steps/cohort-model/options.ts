@@ -1,6 +1,7 @@
 /** The `cohort-model` step's options: one zod schema for the types, the messages and the JSON Schema. */
 import { z } from "zod";
 import { Name } from "../../spec/common.js";
+import { UncertaintyOptions } from "./uncertainty-options.js";
 
 export const Options = z.object({
   mode: z.enum(["inflow-driven", "stock-driven"]),
@@ -23,6 +24,7 @@ export const Options = z.object({
   negative_inflow: z.enum(["keep", "clamp"]).default("keep").describe("negative inflow: keep it (flagged), or clamp it to 0 (inflow-driven: the negative amount does not enter the stock and is reported; stock-driven: the unmet stock change is reported)"),
   indicators: z.boolean().default(true).describe("mean age of the stock and of the outflow per series-year"),
   convention: z.enum(["midpoint"]).default("midpoint").describe("discrete-time convention (DOMAIN: items enter mid-year)"),
+  uncertainty: UncertaintyOptions.optional().describe("Monte Carlo ranges (<id>_uncertainty) and sensitivity (<id>_sensitivity) over uncertain lifetimes, content and input"),
 });
 
 export type O = z.output<typeof Options> & { id: string };

@@ -11,12 +11,13 @@ import type { MatchRow } from "../../ops/param-match.js";
 import { duplicateKeys, invertedRanges, locatedRelation, raise, rowsWhere, type Problem } from "../../ops/config-table.js";
 import type { PlanContext, StepContext } from "../types.js";
 import { CONTENT_COLUMNS, LIFETIME_KEYS, type O } from "./options.js";
+import { LIFETIME_SPREAD_COLUMNS } from "./uncertainty-options.js";
 
 export interface ParamRow extends MatchRow {
   raw: Record<string, unknown>;
 }
 
-export const LIFETIME_COLUMNS = [...LIFETIME_KEYS, ...ALL_PARAMS];
+export const LIFETIME_COLUMNS = [...LIFETIME_KEYS, ...ALL_PARAMS, ...LIFETIME_SPREAD_COLUMNS];
 
 /** Plan-time: a parameter table's columns are series keys and the accepted names only. */
 export function checkParamColumns(ctx: PlanContext, o: O, table: string, option: string, accepted: readonly string[], required: readonly string[]): void {
