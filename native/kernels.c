@@ -151,9 +151,17 @@ static void product_block(const double *pack, const double *M, double *O, size_t
 
 static int block_rows(void) { return isa == ISA_AVX512 ? 8 : 6; }
 
+/* A pack for R rows of T cohorts, 64-byte aligned, with zeros up to the next multiple of 8 cohorts. */
+static double *pack_buffer(int R, size_t T) {
+  size_t len = ((T + 7) / 8 * 8) * (size_t)R;
+  double *p = aligned_alloc(64, (len * sizeof(double) + 63) / 64 * 64);
+  if (p) memset(p, 0, len * sizeof(double));
+  return p;
+}
+
 static int run_product(const double *I, const double *M, double *O, size_t n, size_t T) {
   int R = block_rows();
-  double *pack = aligned_alloc(64, ((T * R * sizeof(double)) + 63) / 64 * 64);
+  double *pack = pack_buffer(R, T);
   if (!pack) return 0;
   for (size_t s0 = 0; s0 < n; s0 += R) {
     int rows = n - s0 < (size_t)R ? (int)(n - s0) : R;
@@ -196,10 +204,71 @@ static int run_product(const double *I, const double *M, double *O, size_t n, si
 BALANCE_BLOCK(balance8, 8, REP8)
 BALANCE_BLOCK(balance6, 6, REP6)
 
+/* Transposes the 8 × 8 block x[0..7] (rows) in place, in 24 shuffles. */
+__attribute__((target("avx512f"), always_inline))
+static inline void tr8(__m512d *x) {
+  __m512d t0 = _mm512_unpacklo_pd(x[0], x[1]), t1 = _mm512_unpackhi_pd(x[0], x[1]);
+  __m512d t2 = _mm512_unpacklo_pd(x[2], x[3]), t3 = _mm512_unpackhi_pd(x[2], x[3]);
+  __m512d t4 = _mm512_unpacklo_pd(x[4], x[5]), t5 = _mm512_unpackhi_pd(x[4], x[5]);
+  __m512d t6 = _mm512_unpacklo_pd(x[6], x[7]), t7 = _mm512_unpackhi_pd(x[6], x[7]);
+  __m512d u0 = _mm512_shuffle_f64x2(t0, t2, 0x88), u1 = _mm512_shuffle_f64x2(t0, t2, 0xDD);
+  __m512d u2 = _mm512_shuffle_f64x2(t1, t3, 0x88), u3 = _mm512_shuffle_f64x2(t1, t3, 0xDD);
+  __m512d u4 = _mm512_shuffle_f64x2(t4, t6, 0x88), u5 = _mm512_shuffle_f64x2(t4, t6, 0xDD);
+  __m512d u6 = _mm512_shuffle_f64x2(t5, t7, 0x88), u7 = _mm512_shuffle_f64x2(t5, t7, 0xDD);
+  x[0] = _mm512_shuffle_f64x2(u0, u4, 0x88);
+  x[4] = _mm512_shuffle_f64x2(u0, u4, 0xDD);
+  x[2] = _mm512_shuffle_f64x2(u1, u5, 0x88);
+  x[6] = _mm512_shuffle_f64x2(u1, u5, 0xDD);
+  x[1] = _mm512_shuffle_f64x2(u2, u6, 0x88);
+  x[5] = _mm512_shuffle_f64x2(u2, u6, 0xDD);
+  x[3] = _mm512_shuffle_f64x2(u3, u7, 0x88);
+  x[7] = _mm512_shuffle_f64x2(u3, u7, 0xDD);
+}
+
+/*
+ * The balance of a block of 8 rows with AVX-512: 8 years at a time, the outflow block
+ * transposed so that one vector holds a year of all 8 rows; each lane then does the scalar
+ * balance's own operations in its order (bit-identical), and the stock and stock change are
+ * transposed back into their rows. Rows beyond `rows` are zeros and are not stored.
+ */
+__attribute__((target("avx512f"), noinline))
+static void balance512(const double *pack, double *O, double *S, double *D, const double *initOut, const double *stock0, size_t s0, int rows, size_t T) {
+  double p0[8] = { 0 };
+  for (int r = 0; r < rows; r++) p0[r] = stock0 ? stock0[s0 + r] : 0.0;
+  __m512d prev = _mm512_loadu_pd(p0);
+  for (size_t t0 = 0; t0 < T; t0 += 8) {
+    __mmask8 k = (__mmask8)(T - t0 >= 8 ? 0xff : (1u << (T - t0)) - 1);
+    __m512d x[8], sv[8], dv[8];
+    for (int r = 0; r < 8; r++) {
+      if (r < rows) {
+        double *o = O + (s0 + r) * T + t0;
+        x[r] = _mm512_maskz_loadu_pd(k, o);
+        if (initOut) {
+          x[r] = _mm512_add_pd(x[r], _mm512_maskz_loadu_pd(k, initOut + (s0 + r) * T + t0));
+          _mm512_mask_storeu_pd(o, k, x[r]);
+        }
+      } else x[r] = _mm512_setzero_pd();
+    }
+    tr8(x);
+    for (int j = 0; j < 8; j++) {
+      __m512d v = _mm512_sub_pd(_mm512_add_pd(prev, _mm512_load_pd(pack + (t0 + j) * 8)), x[j]);
+      sv[j] = v;
+      dv[j] = _mm512_sub_pd(v, prev);
+      prev = v;
+    }
+    tr8(sv);
+    tr8(dv);
+    for (int r = 0; r < rows; r++) {
+      _mm512_mask_storeu_pd(S + (s0 + r) * T + t0, k, sv[r]);
+      _mm512_mask_storeu_pd(D + (s0 + r) * T + t0, k, dv[r]);
+    }
+  }
+}
+
 /* The inflow-driven model: per block of rows, the product, then their balance while the rows are in cache. */
 static int run_inflow(const double *I, const double *M, double *O, double *S, double *D, const double *initOut, const double *stock0, size_t n, size_t T) {
   int R = block_rows();
-  double *pack = aligned_alloc(64, ((T * R * sizeof(double)) + 63) / 64 * 64);
+  double *pack = pack_buffer(R, T);
   double *scratch = calloc(4 * T, sizeof(double));
   if (!pack || !scratch) {
     free(pack);
@@ -210,7 +279,8 @@ static int run_inflow(const double *I, const double *M, double *O, double *S, do
     int rows = n - s0 < (size_t)R ? (int)(n - s0) : R;
     pack_rows(pack, I, s0, rows, R, T);
     product_block(pack, M, O, s0, rows, T);
-    if (R == 8) balance8(pack, O, S, D, initOut, stock0, s0, rows, T, scratch);
+    if (isa == ISA_AVX512) balance512(pack, O, S, D, initOut, stock0, s0, rows, T);
+    else if (R == 8) balance8(pack, O, S, D, initOut, stock0, s0, rows, T, scratch);
     else balance6(pack, O, S, D, initOut, stock0, s0, rows, T, scratch);
   }
   free(pack);
