@@ -15,11 +15,11 @@
  * Runs are kept run-major (run r's cells contiguous) and summarised per cell at the end:
  * mean, sd and type-7 quantiles (summary.ts), or Sobol indices (sensitivity.ts).
  */
-import { CohortGroup, curveOf, inflowDriven, stockDriven, composition, cohortProduct, makeLifetime, type Curve, type InitialContribution } from "../cohort/index.js";
+import { CohortGroup, curveOf, survivalVector, inflowDriven, stockDriven, composition, cohortProduct, makeLifetime, type Curve, type InitialContribution } from "../cohort/index.js";
 import { yearFactors } from "./correlation.js";
 import { splitMix64, Rng } from "./random.js";
 import { factorMarginal } from "./spreads.js";
-import { summarizeCells, type CellStats } from "./summary.js";
+import { drawOrder, summarizeCells, summarizeDrawMajorSorted, type CellStats } from "./summary.js";
 import { sobolIndices } from "./sensitivity.js";
 import type { Marginal } from "./marginals.js";
 import { LT_PARAMS, type McChunk, type McChunkResult, type McGroup, type McJob, type VarSobol, type VarStats } from "./mc-types.js";
@@ -47,11 +47,19 @@ export class Curves {
     return new Curves(job);
   }
 
-  of(q: number, li: number): Curve {
+  /** σ(0..n − 1) only (no leaving shares): what a stock needs. */
+  sigma(q: number, li: number, n: number): Float64Array {
+    const c = this.cache.get(this.key(q, li));
+    if (c) return c.sigma;
+    return survivalVector(this.lifetime(q, li), n);
+  }
+
+  private key(q: number, li: number): number {
+    return this.job.ltValues ? q * this.job.ltDraws + li : q;
+  }
+
+  private lifetime(q: number, li: number) {
     const job = this.job;
-    const key = job.ltValues ? q * job.ltDraws + li : q;
-    let c = this.cache.get(key);
-    if (c) return c;
     const row = job.rows[q]!;
     const p = { ...row };
     let drawn = "";
@@ -65,10 +73,17 @@ export class Curves {
       });
     }
     try {
-      c = curveOf(makeLifetime(p, `lifetimes row ${row.label}`, (name) => job.tables[name]), job.curveLength);
+      return makeLifetime(p, `lifetimes row ${row.label}`, (name) => job.tables[name]);
     } catch (e) {
       throw new DrawError(`step ${job.step}: uncertainty draw ${li + 1}:${drawn}: ${(e as Error).message}; a spread that can reach such values needs truncate_below (e.g. 0) or a narrower width`);
     }
+  }
+
+  of(q: number, li: number): Curve {
+    const key = this.key(q, li);
+    let c = this.cache.get(key);
+    if (c) return c;
+    c = curveOf(this.lifetime(q, li), this.job.curveLength);
     this.cache.set(key, c);
     return c;
   }
@@ -117,8 +132,19 @@ function newSobol(cells: number, k: number): VarSobol {
 }
 
 /** Summaries (or Sobol indices) of a run-major block (R × cells) into the chunk's arrays at `offset` cells. */
-function summarise(c: Ctx, buf: Float64Array, cells: number, offset: number, stats: VarStats | null, sobol: VarSobol | null): void {
-  if (stats) summarizeCells(buf, c.R, cells, { probabilities: c.job.probabilities, layout: "draw-major", into: stats as CellStats & VarStats, offset });
+function summarise(c: Ctx, buf: Float64Array, cells: number, offset: number, stats: VarStats | null, sobol: VarSobol | null, sorted?: { on: boolean; order: Int32Array | null; tries: number }): void {
+  if (stats && sorted?.on) {
+    // The years of one series often rank the draws alike, and so do the series of one group
+    // (one quantity drives them): order statistics are read off one ordering of the draws,
+    // checked cell by cell. An ordering that fits fewer than half the cells is made afresh;
+    // after three such misses the chunk goes the general way.
+    let direct = sorted.order ? summarizeDrawMajorSorted(buf, c.R, cells, c.job.probabilities, stats as CellStats & VarStats, offset, sorted.order) : 0;
+    if (direct < cells / 2) {
+      sorted.order = drawOrder(buf, c.R, cells);
+      direct = summarizeDrawMajorSorted(buf, c.R, cells, c.job.probabilities, stats as CellStats & VarStats, offset, sorted.order);
+      if (direct < cells / 2 && ++sorted.tries >= 3) sorted.on = false;
+    }
+  } else if (stats) summarizeCells(buf, c.R, cells, { probabilities: c.job.probabilities, layout: "draw-major", into: stats as CellStats & VarStats, offset });
   if (sobol) {
     const s = c.job.sobol!;
     const k = s.assumptions.length;
@@ -183,13 +209,17 @@ function bySeries(c: Ctx, row: number, stats: (VarStats | null)[], sobol: (VarSo
   const sig = new Float64Array(R * T);
   const lea = new Float64Array(R * T);
   for (let r = 0; r < R; r++) {
-    const cu = c.curves.of(row, job.idx[3 * r]!);
-    sig.set(cu.sigma.subarray(0, T), r * T);
-    lea.set(cu.leave.subarray(0, T), r * T);
+    const li = job.idx[3 * r]!;
+    if (job.variables.includes("outflow")) {
+      const cu = c.curves.of(row, li);
+      sig.set(cu.sigma.subarray(0, T), r * T);
+      lea.set(cu.leave.subarray(0, T), r * T);
+    } else sig.set(c.curves.sigma(row, li, T), r * T);
   }
   const toe = new Float64Array(T * T);
   const bufs = Array.from({ length: 3 + 2 * M }, () => new Float64Array(R * T));
   const needOut = job.variables.includes("outflow");
+  const sorted = bufs.map(() => ({ on: true, order: null as Int32Array | null, tries: 0 }));
   const needIn = job.variables.includes("inflow");
   const x = new Float64Array(T);
   const F = new Float64Array(R); // the input factor of each run (the same in every year)
@@ -231,7 +261,7 @@ function bySeries(c: Ctx, row: number, stats: (VarStats | null)[], sobol: (VarSo
       for (let v = 0; v < 3; v++) if (c.wanted(v)) addTotals(c, r, j, v, bufs[v]!, r * T);
       for (let m = 0; m < M; m++) if (c.wanted(2)) addTotals(c, r, j, 3 + m, bufs[3 + 2 * m]!, r * T);
     }
-    for (let v = 0; v < bufs.length; v++) if (stats[v] || sobol[v]) summarise(c, bufs[v]!, T, j * T, stats[v]!, sobol[v]!);
+    for (let v = 0; v < bufs.length; v++) if (stats[v] || sobol[v]) summarise(c, bufs[v]!, T, j * T, stats[v]!, sobol[v]!, sorted[v]);
   }
 }
 

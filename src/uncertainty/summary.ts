@@ -170,3 +170,79 @@ export function summarizeCells(values: Float64Array | Float32Array, draws: numbe
   }
   return out;
 }
+
+/**
+ * Draw-major blocks (draws × C cells, draw d of cell c at [d·C + c]) whose cells tend to rank
+ * the draws alike, e.g. the years of one series when one uncertain quantity drives them all.
+ * The draws are ordered once by the last cell's values; a cell whose values are non-decreasing
+ * in that order (checked for every cell, one comparison per value) has its order statistics
+ * read off directly: x(k) is the value at position k. Every other cell (and any cell holding a
+ * NaN) goes through the general path above. The quantiles are the same numbers either way (the
+ * same order statistics, the same type-7 interpolation); mean and sd sum the draws in sorted
+ * order with the same corrected two-pass formula, so they may differ from the general path in
+ * the last bits. Returns the number of cells read off directly.
+ */
+export function drawOrder(values: Float64Array, draws: number, cells: number): Int32Array {
+  const key = new Float64Array(draws);
+  for (let d = 0; d < draws; d++) key[d] = values[d * cells + cells - 1]!;
+  const idx = Array.from({ length: draws }, (_, i) => i).sort((a, b) => key[a]! - key[b]! || a - b);
+  return Int32Array.from(idx);
+}
+
+const plans = new Map<string, Plan>();
+
+export function summarizeDrawMajorSorted(values: Float64Array, draws: number, cells: number, probabilities: readonly number[], into: CellStats, offset = 0,
+  order: Int32Array = drawOrder(values, draws, cells)): number {
+  const R = draws;
+  const C = cells;
+  const pk = `${R}:${probabilities.join(",")}`;
+  let p = plans.get(pk);
+  if (!p) plans.set(pk, (p = plan(R, probabilities)));
+  // One pass over the draws in the given order (by default the last cell's; ties by draw
+  // index): the sums, and whether each cell's values are non-decreasing in that order.
+  const ok = new Uint8Array(C).fill(1);
+  const sum = new Float64Array(C);
+  for (let t = 0; t < C; t++) sum[t] = values[order[0]! * C + t]!;
+  for (let i = 1; i < R; i++) {
+    const a = order[i]! * C;
+    const b = order[i - 1]! * C;
+    for (let t = 0; t < C; t++) {
+      const x = values[a + t]!;
+      sum[t]! += x;
+      ok[t]! &= x >= values[b + t]! ? 1 : 0;
+    }
+  }
+  for (let t = 0; t < C; t++) if (Number.isNaN(sum[t]!)) ok[t] = 0;
+  const m = new Float64Array(C);
+  for (let t = 0; t < C; t++) m[t] = sum[t]! / R;
+  const dev = new Float64Array(C);
+  const dev2 = new Float64Array(C);
+  for (let d = 0; d < R; d++) {
+    const a = d * C;
+    for (let t = 0; t < C; t++) {
+      const e = values[a + t]! - m[t]!;
+      dev[t]! += e;
+      dev2[t]! += e * e;
+    }
+  }
+  let direct = 0;
+  const col = new Float64Array(R);
+  for (let t = 0; t < C; t++) {
+    const at = offset + t;
+    if (!ok[t]) {
+      for (let i = 0; i < R; i++) col[i] = values[i * C + t]!;
+      summarizeOne(col, 0, R, p, into, at);
+      continue;
+    }
+    direct++;
+    const d = dev[t]!;
+    into.mean[at] = m[t]! + d / R;
+    into.sd[at] = Math.sqrt(Math.max(0, dev2[t]! - (d * d) / R) / (R - 1));
+    for (let k = 0; k < p.frac.length; k++) {
+      const g = p.frac[k]!;
+      const lo = values[order[p.ranks[p.slotLo[k]!]!]! * C + t]!;
+      into.quantiles[k]![at] = g > 0 ? lo + g * (values[order[p.ranks[p.slotHi[k]!]!]! * C + t]! - lo) : lo;
+    }
+  }
+  return direct;
+}
