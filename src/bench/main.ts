@@ -7,6 +7,7 @@ import path from "node:path";
 import { fileURLToPath } from "node:url";
 import { byCohortStage, cohortStage, handoffStage, SIZES, tableStage, type Size, type StageResult } from "./stages.js";
 import { refreshStage } from "./refresh.js";
+import { mcStage } from "./mc.js";
 
 const ROOT = path.resolve(path.dirname(fileURLToPath(import.meta.url)), "..", "..");
 const CACHE = path.join(ROOT, ".bench-cache");
@@ -28,6 +29,7 @@ async function child(): Promise<void> {
     case "handoff": r = await handoffStage(Number(arg("values") ?? 1e7), runs); break;
     case "by_cohort": r = await byCohortStage(CACHE, Number(arg("series")), Number(arg("years")), mem ?? "1GB"); break;
     case "refresh": r = await refreshStage(CACHE, (arg("size") ?? "M") as Size, mem); break;
+    case "mc": r = await mcStage(Number(arg("draws")), Number(arg("series")), Number(arg("years")), Number(arg("groups") ?? 100)); break;
     default: throw new Error(`unknown stage ${stage}`);
   }
   r.peak_rss_bytes = process.resourceUsage().maxRSS * 1024;
@@ -57,6 +59,8 @@ async function main(): Promise<void> {
   results.push(runStage(["cohort", "--series", String(series), "--years", String(years), "--groups", "100", "--runs", runs]));
   results.push(runStage(["handoff", "--values", "10000000", "--runs", runs]));
   results.push(runStage(["by_cohort", "--series", "10000", "--years", "200", "--memory-limit", "1GB"]));
+  // Monte Carlo: 1,000 draws of 10,000 series × 200 years, 100 lifetime groups (--mc-draws, --mc-series to change; --no-mc to skip).
+  if (!flag("no-mc")) results.push(runStage(["mc", "--draws", arg("mc-draws") ?? "1000", "--series", arg("mc-series") ?? "10000", "--years", "200", "--groups", "100"]));
   // The refresh stage (re-use of unchanged work): opt-in with --refresh (M by default, or --refresh-size).
   if (flag("refresh")) results.push(runStage(["refresh", "--size", arg("refresh-size") ?? "M", "--memory-limit", mem]));
   const scaling: Record<string, number>[] = [];
@@ -82,6 +86,8 @@ async function main(): Promise<void> {
     `hand-off     ${h.handoff_values} values                      read ${fmt(Number(h.handoff_read_values_per_s))} values/s, write ${fmt(Number(h.handoff_write_rows_per_s))} rows/s (${h.handoff_native})   ${gb(Number(h.peak_rss_bytes))}`,
     `by-cohort    ${b.by_cohort_series} series × ${b.by_cohort_years} years → ${b.by_cohort_rows} rows   ${fmt(Number(b.by_cohort_s))} s   ${fmt(Number(b.by_cohort_rows_per_s))} rows/s   ${gb(Number(b.peak_rss_bytes))}`,
   ];
+  const mc = results.find((r) => r.stage === "mc");
+  if (mc) lines.push(`monte carlo  ${mc.mc_draws} draws × ${mc.mc_series} series × ${mc.mc_years} years   ${fmt(Number(mc.mc_s))} s   ${fmt(Number(mc.mc_cells_per_s))} cells/s (${mc.mc_threads} threads)   ${gb(Number(mc.peak_rss_bytes))}`);
   const rf = results.find((r) => r.stage === "refresh");
   if (rf) {
     lines.push(`refresh      ${rf.refresh_rows} trade rows: newest year's trade changed ${fmt(Number(rf.refresh_trade_reuse_s))} s with re-use (${rf.refresh_trade_reused} steps re-used) vs ${fmt(Number(rf.refresh_trade_full_s))} s in full; a lifetime changed ${fmt(Number(rf.refresh_lifetime_reuse_s))} s with re-use (${rf.refresh_lifetime_reused} steps) vs ${fmt(Number(rf.refresh_lifetime_full_s))} s`);
@@ -100,6 +106,7 @@ async function main(): Promise<void> {
     by_cohort_rows: b.by_cohort_rows, by_cohort_peak_rss_bytes: b.peak_rss_bytes,
     peak_rss_bytes: Math.max(...results.map((r) => Number(r.peak_rss_bytes))),
     table_peak_rss_bytes: t.peak_rss_bytes, table_stage_peak_rss_bytes: t.table_stage_peak_rss_bytes, audit_errors: t.audit_errors,
+    ...(mc ? { mc_draws: mc.mc_draws, mc_series: mc.mc_series, mc_years: mc.mc_years, mc_s: mc.mc_s, mc_cells_per_s: mc.mc_cells_per_s, mc_peak_rss_bytes: mc.peak_rss_bytes } : {}),
     ...(rf ? { refresh_trade_reuse_s: rf.refresh_trade_reuse_s, refresh_trade_full_s: rf.refresh_trade_full_s, refresh_lifetime_reuse_s: rf.refresh_lifetime_reuse_s, refresh_lifetime_full_s: rf.refresh_lifetime_full_s } : {}),
     stages: results, scaling,
   };
