@@ -12,6 +12,7 @@ import { registerPlan } from "./plan.js";
 import { registerDiff } from "./diff.js";
 import { registerDescribe } from "./describe.js";
 import { registerReport } from "./report.js";
+import { registerMerge } from "./merge.js";
 
 // Output piped into a program that stops reading (head, say) ends the command quietly.
 process.stdout.on("error", (e: NodeJS.ErrnoException) => {
@@ -25,7 +26,7 @@ program
   .description("Material-stock accounting: apparent consumption, cohort models, audits and publishing on embedded DuckDB.")
   .version(TOOL_VERSION)
   .showHelpAfterError()
-  .addHelpText("after", "\nExit codes: 0 success, 1 internal error, 2 invalid pipeline file or invocation, 3 bad input data, 4 an audit of severity error failed, 5 target or catalog busy, 6 out of memory, 7 out of disk, 8 an input changed during the run.");
+  .addHelpText("after", "\nExit codes: 0 success, 1 internal error, 2 invalid pipeline file or invocation, 3 bad input data, 4 an audit of severity error failed, 5 target or catalog busy, 6 out of memory, 7 out of disk, 8 an input changed during the run, 9 a sharded run or cluster job failed.");
 program.exitOverride((err) => {
   process.exit(err.exitCode === 0 ? 0 : 2);
 });
@@ -38,6 +39,7 @@ registerReleases(program);
 registerDiff(program);
 registerDescribe(program);
 registerReport(program);
+registerMerge(program);
 
 program.parseAsync(process.argv).catch((e: unknown) => {
   process.stderr.write(`cairn: ${(e as Error).message ?? String(e)}\n`);

@@ -4,6 +4,7 @@ import { loadPipeline, parseSet } from "../spec/load.js";
 import { runPipeline, type RunReport } from "../run/runner.js";
 import { Progress } from "../run/progress.js";
 import { collect, fail, parsePath, parseSize, parseThreads } from "./common.js";
+import { parseShard } from "../run/shard.js";
 
 import { reportText as printReport } from "../run/report-text.js";
 export { printReport };
@@ -28,15 +29,18 @@ export function registerRun(program: Command): void {
     .option("--reuse-from <dir>", "take unchanged steps from this run directory (default: the previous release)", parsePath)
     .option("--no-reuse", "compute every step, even those unchanged since the previous run")
     .option("--no-report", "do not write report.html into the run directory")
+    .option("--shard <K/N>", "run shard K (from 0) of N: the steps that run per key, on this shard's keys (see cairn merge, cairn submit)")
+    .option("--shard-by <column>", "the key the shards split (with --shard)", "region")
     .action(async (file: string, o: { out?: string; replace: boolean; set: string[]; quiet: boolean; json: boolean; threads?: number; memoryLimit?: string; tempDir?: string;
-      release?: string; catalog?: string; provisional: boolean; against?: string; reuseFrom?: string; reuse: boolean; report: boolean }) => {
+      release?: string; catalog?: string; provisional: boolean; against?: string; reuseFrom?: string; reuse: boolean; report: boolean; shard?: string; shardBy: string }) => {
       let report: RunReport;
       try {
+        const shard = o.shard !== undefined ? { ...parseShard(o.shard), by: o.shardBy } : undefined;
         const lp = loadPipeline(file, parseSet(o.set));
         report = await runPipeline(lp, {
           out: o.out, replace: o.replace, progress: Progress.forTerminal(o.quiet || o.json),
           threads: o.threads, memoryLimit: o.memoryLimit, tempDirectory: o.tempDir,
-          release: o.release, catalog: o.catalog, provisional: o.provisional, against: o.against, reuseFrom: o.reuseFrom, reuse: o.reuse, report: o.report,
+          release: o.release, catalog: o.catalog, provisional: o.provisional, against: o.against, reuseFrom: o.reuseFrom, reuse: o.reuse, report: o.report, shard,
         });
       } catch (e) {
         fail(e, o.json, exitCodeOf(e));

@@ -40,6 +40,8 @@ export interface StepShard {
   shared: string[];
   /** Tables cut to the shard's keys after the step runs in a shard (`both` steps), by column. */
   trim: { table: string; column: string }[];
+  /** Its years are those of its whole input (a cohort model): every shard's main table must span the same years. */
+  span?: boolean;
 }
 
 export interface SourceShard {
@@ -71,6 +73,7 @@ interface Verdict {
   partitioned?: string[];
   shared?: string[];
   trim?: { table: string; column: string }[];
+  span?: boolean;
 }
 
 interface RuleCtx {
@@ -201,7 +204,7 @@ const RULES: Record<string, (n: StepNode, c: RuleCtx) => Verdict> = {
     }
     const main = n.outputs.filter((x) => x.keys.includes(c.by)).map((x) => x.name);
     return {
-      placement: "shards", demands: d, partitioned: main, shared: n.outputs.filter((x) => !main.includes(x.name)).map((x) => x.name),
+      placement: "shards", demands: d, partitioned: main, shared: n.outputs.filter((x) => !main.includes(x.name)).map((x) => x.name), span: true,
       reason: `each series (${o.keys.join(" × ")}) is computed on its own`,
     };
   },
@@ -269,6 +272,7 @@ export async function planShards(plan: Plan, by: string): Promise<ShardPlan> {
       c.placed.set(n.id, {
         id: n.id, kind: n.kind.kind, placement: v.placement, reason: v.reason,
         partitioned: v.placement === "merge" ? [] : v.partitioned ?? [], shared: v.placement === "merge" ? [] : v.shared ?? [], trim: v.trim ?? [],
+        ...(v.span && v.placement !== "merge" ? { span: true } : {}),
       });
       if (v.placement !== "merge") for (const [t, modes] of v.demands) demanded.set(t, [...(demanded.get(t) ?? []), modes]);
     }

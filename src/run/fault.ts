@@ -6,13 +6,18 @@
  *   CAIRN_FAULT=before-publish:enospc                               (the disk fills up)
  *   CAIRN_FAULT=after-step:consumption:oom                          (the engine runs out of memory)
  *   CAIRN_FAULT=after-step:x:replace:/path/a.csv:/path/b.csv        (b is renamed over a)
- * Points: after-source:<name>, after-step:<id>, before-publish.
+ *   CAIRN_FAULT=after-step:stocks:fail                              (the run stops with bad input, exit 3)
+ * Points: after-source:<name>, after-step:<id>, before-publish. With CAIRN_FAULT_SHARD=K the
+ * fault happens only in shard K of a sharded run (`--shard K/N`), never in other runs.
  */
 import { appendFileSync, renameSync } from "node:fs";
+import { DataError } from "../errors.js";
 
-export function fault(point: string): void {
+export function fault(point: string, shard?: number): void {
   const spec = process.env.CAIRN_FAULT;
   if (!spec || !spec.startsWith(point + ":")) return;
+  const only = process.env.CAIRN_FAULT_SHARD;
+  if (only !== undefined && only !== "" && String(shard) !== only.trim()) return;
   const [action, ...args] = spec.slice(point.length + 1).split(":");
   switch (action) {
     case "exit":
@@ -25,6 +30,8 @@ export function fault(point: string): void {
     case "append":
       appendFileSync(args.join(":"), "Z,c1,2003,1\n");
       break;
+    case "fail":
+      throw new DataError(`injected failure at ${point}${shard === undefined ? "" : ` in shard ${shard}`} (CAIRN_FAULT)`);
     case "replace":
       renameSync(args[1]!, args[0]!);
       break;

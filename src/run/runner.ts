@@ -34,6 +34,10 @@ import { loadSources, reuseStep, runStep } from "./steps.js";
 import { newestDataYear, publishRevisions } from "./revise.js";
 import { reportText } from "./report-text.js";
 import { renderReport } from "../report/report.js";
+import { planShards, type ShardPlan } from "../plan/shard.js";
+import { planFingerprint } from "../plan/fingerprint.js";
+import { afterShardStep, cutSources, ITEMS_FILE, ShardAuditLog, type ShardSpec } from "./shard.js";
+import { checkBoth, mergeManifest, takeStep, type MergeSpec } from "./merge.js";
 
 const require = createRequire(import.meta.url);
 export const TOOL_VERSION: string = (require("../../package.json") as { version: string }).version;
@@ -58,6 +62,10 @@ export interface RunOptions extends SessionOptions {
   reuse?: boolean;
   /** Write report.html into the run directory (default true). */
   report?: boolean;
+  /** Run one shard of a sharded run: the steps the shard plan places in the shards, on the shard's keys. */
+  shard?: ShardSpec;
+  /** Internal (cairn merge): merge these shard run directories into one run. */
+  merge?: MergeSpec;
 }
 
 export type SourceReport = Omit<SourceResult, "files"> & { fingerprint?: string; method_fingerprint?: string; reused?: boolean };
@@ -77,6 +85,10 @@ export interface RunReport {
   timings_s: Record<string, number>;
   /** The HTML report written into the run directory (relative path), unless turned off. */
   report?: string;
+  /** A shard's place in a sharded run. */
+  shard?: { index: number; count: number; by: string; keys: number; of: number };
+  /** A merge: the shard run directories it was made from. */
+  merged_from?: string[];
 }
 
 function utcStamp(d: Date): string {
@@ -134,22 +146,28 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
   const started = new Date();
   // The plan first: a file that is not a valid pipeline stops here (exit 2), before anything is written.
   const plan = await buildPlan(lp);
+  if (opts.shard && (opts.release || opts.against || opts.reuseFrom)) {
+    throw new PipelineError(`--shard: a shard is one part of a run, not a release; --release, --against and --reuse-from belong to the merge (cairn merge … --release ID)`);
+  }
+  const sp = opts.shard ? await planShards(plan, opts.shard.by) : opts.merge?.sp ?? null;
   const catalog = catalogOf(lp, opts);
   if (opts.release) Catalog.checkId(opts.release);
   if (opts.release && opts.out) throw new PipelineError("--out and --release: a release is written to its catalog as <catalog>/<release id>; give one of them");
-  const out = catalog ? path.join(catalog.dir, opts.release!) : opts.out ?? defaultRunDir(lp, opts.cwd, started);
+  const out = catalog ? path.join(catalog.dir, opts.release!) : opts.out ?? defaultRunDir(lp, opts.cwd, started) + (opts.shard ? `-shard-${opts.shard.index}-of-${opts.shard.count}` : "");
+  // A merge never writes into one of its shards' run directories.
+  const protect = [...protectedPaths(lp), ...(opts.merge?.shards.map((x) => x.dir) ?? [])];
   // One refresh of a catalog at a time (exit 5), then the target: never the current folder, an input's folder or anything but an earlier run (exit 2), and its lock (exit 5).
   catalog?.acquire();
   const rd = new RunDir(out);
   let s: Session;
   let previous: PreviousRun | null;
   try {
-    checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd });
+    checkTarget(out, { replace: Boolean(opts.replace), protect, cwd: opts.cwd });
     rd.acquire();
     try {
       for (const m of rd.cleanStale()) progress.info(m);
       catalog?.cleanTemporaries();
-      checkTarget(out, { replace: Boolean(opts.replace), protect: protectedPaths(lp), cwd: opts.cwd }); // again, under the lock
+      checkTarget(out, { replace: Boolean(opts.replace), protect, cwd: opts.cwd }); // again, under the lock
       previous = readPrevious(opts.against ?? previousRelease(catalog, opts.release));
       rd.create();
       s = await Session.open({ ...opts, tempDirectory: opts.tempDirectory ?? path.join(rd.staging, ".spill") });
@@ -161,7 +179,7 @@ export async function runPipeline(lp: LoadedPipeline, opts: RunOptions = {}): Pr
     catalog?.release();
     throw e;
   }
-  const run = new Run(lp, plan, opts, s, rd, progress, started, catalog, previous);
+  const run = new Run(lp, plan, opts, s, rd, progress, started, catalog, previous, sp);
   try {
     return await run.execute();
   } finally {
@@ -192,10 +210,13 @@ export class Run {
   revisionCounts: { table: string; rows: number }[] = [];
   readonly ctx: StepContext;
   readonly resources: { memoryLimit?: string; tempDir: string; outDir: string };
+  /** A shard's key values: all of them (sorted), and the shard's own block. */
+  shardKeys: { all: string[]; own: string[] } | null = null;
 
   constructor(readonly lp: LoadedPipeline, readonly plan: Plan, readonly opts: RunOptions, readonly s: Session, readonly rd: RunDir,
-    readonly progress: Progress, readonly started: Date, readonly catalog: Catalog | null, readonly previous: PreviousRun | null) {
-    this.audits = new AuditLog(s, lp.pipeline.base_unit);
+    readonly progress: Progress, readonly started: Date, readonly catalog: Catalog | null, readonly previous: PreviousRun | null,
+    readonly sp: ShardPlan | null = null) {
+    this.audits = opts.shard ? new ShardAuditLog(s, lp.pipeline.base_unit, opts.shard.by) : new AuditLog(s, lp.pipeline.base_unit);
     this.resources = { memoryLimit: opts.memoryLimit, tempDir: opts.tempDirectory ?? path.join(rd.staging, ".spill"), outDir: path.resolve(rd.target) };
     const tables = new Map<string, TableInfo>();
     const continued = new Set(plan.steps.map(continuesOf).filter((x): x is string => Boolean(x)));
@@ -231,6 +252,22 @@ export class Run {
     }
   }
 
+  /** single: an ordinary run; shard: one shard of a sharded run; merge: the shards merged. */
+  get mode(): "single" | "shard" | "merge" {
+    return this.opts.shard ? "shard" : this.opts.merge ? "merge" : "single";
+  }
+
+  /** Where the shard plan places a step (null outside sharded runs). */
+  placement(id: string): "shards" | "both" | "merge" | null {
+    return this.sp?.steps.find((x) => x.id === id)?.placement ?? null;
+  }
+
+  /** Steps this run does not compute: in a shard, those at the merge; at the merge, those taken from the shards. */
+  skips(id: string): boolean {
+    const p = this.placement(id);
+    return (this.mode === "shard" && p === "merge") || (this.mode === "merge" && p === "shards");
+  }
+
   async execute(): Promise<RunReport> {
     const { s, plan } = this;
     try {
@@ -238,7 +275,10 @@ export class Run {
       await initRejects(s);
       const hashes = await this.time("hash_inputs", () => hashInputs(s, this.lp, plan, this.watch));
       this.prints = fingerprints(plan, TOOL_VERSION, hashes);
-      if (this.previous && this.opts.reuse !== false) {
+      this.opts.merge?.checkPlan(plan, this.prints, planFingerprint(plan, this.prints));
+      if (this.mode !== "single") {
+        // No re-use in sharded runs: a shard's steps are taken over by the merge, not from a previous run.
+      } else if (this.previous && this.opts.reuse !== false) {
         const from = this.opts.reuseFrom ? readPrevious(this.opts.reuseFrom) : this.previous;
         if (from) this.reused = reusableSteps(plan, this.prints, from);
       } else if (this.opts.reuseFrom && this.opts.reuse !== false) {
@@ -247,14 +287,20 @@ export class Run {
       }
       if (this.reused.size) this.progress.info(`re-used unchanged: ${[...this.reused].join(", ")}`);
       await loadSources(this);
+      if (this.opts.shard) this.shardKeys = await this.time("shard_keys", () => cutSources(this, this.sp!, this.opts.shard!));
       // From here on pipeline SQL runs in a sandbox: no file, database or extension outside the run.
       const reuseDir = this.reuseSource()?.dir;
-      await s.sandbox([this.rd.staging, this.resources.tempDir, ...(this.previous ? [this.previous.dir] : []), ...(reuseDir ? [reuseDir] : [])], this.inputs.map((f) => f.path));
+      await s.sandbox([this.rd.staging, this.resources.tempDir, ...(this.previous ? [this.previous.dir] : []), ...(reuseDir ? [reuseDir] : []),
+        ...(this.opts.merge?.shards.map((x) => x.dir) ?? [])], this.inputs.map((f) => f.path));
       // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
-      for (const node of plan.steps) if (!this.reused.has(node.id)) await node.kind.check?.(this.ctx, node.step as never);
+      for (const node of plan.steps) if (!this.reused.has(node.id) && !this.skips(node.id)) await node.kind.check?.(this.ctx, node.step as never);
       for (const node of plan.steps) {
+        if (this.mode === "shard" && this.skips(node.id)) continue;
         if (this.reused.has(node.id)) await reuseStep(this, node);
+        else if (this.skips(node.id)) await takeStep(this, node);
         else await runStep(this, node);
+        if (this.opts.shard) await afterShardStep(this, node, this.sp!.steps.find((x) => x.id === node.id)!, this.opts.shard);
+        if (this.mode === "merge" && this.placement(node.id) === "both") await checkBoth(this, node);
         this.watch.checkStat(`after step ${node.id}`);
         if (this.audits.failedErrors.length > 0) {
           const f = this.audits.failedErrors;
@@ -264,10 +310,10 @@ export class Run {
         this.progress.info(`step ${node.id}: done in ${this.timings[`step:${node.id}`]} s`);
       }
       const { fault } = await import("./fault.js");
-      fault("before-publish");
+      fault("before-publish", this.opts.shard?.index);
       await this.time("verify_inputs", () => this.watch.verifyHashes());
       if (this.previous) await this.time("revisions", () => publishRevisions(this));
-      await this.time("publish", () => this.publish());
+      await this.time("publish", () => (this.opts.shard ? this.publishShard() : this.publish()));
       return await this.finish("ok");
     } catch (e) {
       return this.fail(e);
@@ -276,6 +322,21 @@ export class Run {
 
   reuseSource(): PreviousRun | null {
     return this.opts.reuseFrom ? readPrevious(this.opts.reuseFrom) : this.previous;
+  }
+
+  /** A shard publishes its steps' tables as plain Parquet files (the merge writes partitions, copies and exports), and its captured audit items. */
+  private async publishShard(): Promise<void> {
+    for (const info of this.ctx.tables.values()) {
+      if (!info.step) continue; // every table, published or not: the merge takes them over
+      const node = this.plan.steps.find((n) => n.id === info.step)!;
+      const role = node.outputs.find((o) => o.name === info.name)!.role;
+      if (info.files) {
+        this.outputs.push(...info.files.map((f) => ({ ...f, step: info.step, role })));
+        continue;
+      }
+      const written = await writeParquet(this.s, { table: info.name, keys: info.keys, dir: this.rd.staging, name: info.name });
+      this.outputs.push(...written.map((f) => ({ ...f, step: info.step, role })));
+    }
   }
 
   private async publish(): Promise<void> {
@@ -345,11 +406,27 @@ export class Run {
         ...(continuesOf(n) ? { continues: continuesOf(n) } : {}),
         fingerprint: this.prints.get(n.id)?.fingerprint, method_fingerprint: this.prints.get(n.id)?.method, options_fingerprint: this.prints.get(n.id)?.options,
         reused: this.reused.has(n.id),
+        ...(this.sp ? { placement: this.placement(n.id) } : {}),
         outputs: n.outputs.map((o) => ({ name: o.name, role: o.role, keys: o.keys })),
       })),
       inputs: this.watch.files().map((f) => ({ ...f, rows: this.inputs.find((i) => i.path === f.path)?.rows ?? null })),
       sources: this.sources.map((r) => ({ ...r, fingerprint: this.prints.get(r.name)?.fingerprint, method_fingerprint: this.prints.get(r.name)?.method })),
       outputs: this.outputs,
+      ...(this.opts.shard ? {
+        shard: {
+          index: this.opts.shard.index, count: this.opts.shard.count, by: this.opts.shard.by,
+          plan_fingerprint: planFingerprint(plan, this.prints),
+          keys: this.shardKeys?.own ?? [], all_keys: this.shardKeys?.all ?? [],
+          placement: Object.fromEntries(this.sp!.steps.map((x) => [x.id, x.placement])),
+          audit_checks: (this.audits as ShardAuditLog).meta,
+        },
+      } : {}),
+      ...(this.opts.merge ? {
+        merged: {
+          by: this.sp!.by, count: this.opts.merge.shards.length, plan_fingerprint: planFingerprint(plan, this.prints), shards: mergeManifest(this),
+          placement: Object.fromEntries(this.sp!.steps.map((x) => [x.id, x.placement])),
+        },
+      } : {}),
       revisions: this.revisionCounts,
       timings_s: this.timings,
       rejects,
@@ -362,6 +439,7 @@ export class Run {
     // Audit table and rejects are always written; tables only on success.
     this.outputs.push(...(await writeParquet(s, { table: REJECTS_TABLE, name: "rejects", dir: rd.staging, sql: `SELECT * FROM ${REJECTS_TABLE} ORDER BY source, file, "row", line, "column", reason` })));
     this.outputs.push(...(await writeParquet(s, { table: AUDIT_TABLE, name: "audit", dir: rd.staging, sql: this.audits.orderedSql() })));
+    if (this.audits instanceof ShardAuditLog) this.outputs.push(...(await writeParquet(s, { table: ITEMS_FILE, name: ITEMS_FILE, dir: rd.staging, sql: this.audits.itemsSql() })));
     const summary = await this.audits.summary();
     const rejects = Number(await s.scalar(`SELECT count(*) FROM ${REJECTS_TABLE}`));
     const code = status === "ok" ? 0 : exitCodeOf(err);
@@ -370,12 +448,14 @@ export class Run {
     const manifest = this.manifest(status, code, message, summary, rejects, engine);
     writeFileSync(path.join(rd.staging, "manifest.json"), JSON.stringify(manifest, null, 2) + "\n");
     s.close();
-    if (this.opts.report !== false) await this.writeReport(status);
+    if (this.opts.report !== false && !this.opts.shard) await this.writeReport(status);
     const report: RunReport = {
       status, exit_code: code, ...(message ? { error: message } : {}), run_dir: path.resolve(rd.target),
       ...(this.opts.release ? { release: this.opts.release } : {}), outputs: this.outputs,
       sources: manifest.sources, reused: [...this.reused], revisions: this.revisionCounts, rejects, audit: summary, timings_s: this.timings,
-      ...(this.opts.report !== false ? { report: "report.html" } : {}),
+      ...(this.opts.report !== false && !this.opts.shard ? { report: "report.html" } : {}),
+      ...(this.opts.shard ? { shard: { index: this.opts.shard.index, count: this.opts.shard.count, by: this.opts.shard.by, keys: this.shardKeys?.own.length ?? 0, of: this.shardKeys?.all.length ?? 0 } } : {}),
+      ...(this.opts.merge ? { merged_from: this.opts.merge.shards.map((x) => x.dir) } : {}),
     };
     const failedDir = path.resolve(rd.target) + ".failed";
     writeFileSync(path.join(rd.staging, "run.log"), this.progress.log() + "\n" + reportText({ ...report, run_dir: status === "ok" ? report.run_dir : failedDir }));

@@ -7,15 +7,28 @@ import type { StepNode } from "../plan/build.js";
 import { fault } from "./fault.js";
 import { takeAudit, takeFiles, takeRejects, viewOver } from "./reuse.js";
 import type { Run } from "./runner.js";
+import { takeSource } from "./merge.js";
 import { sha256, writeParquet } from "../publish/parquet.js";
 
-/** Loads the sources that computed steps read; the others (read only by re-used steps) are taken over. */
+/**
+ * Loads the sources that computed steps read; the others (read only by re-used steps) are taken
+ * over. A shard loads only the sources its steps read; a merge takes those read only by the
+ * shards' steps from the shards (their report, audit rows and rejects: every shard loaded them
+ * whole), except for a release, which keeps a copy of every input.
+ */
 export async function loadSources(run: Run): Promise<void> {
   const { ctx, plan, lp } = run;
-  const needed = new Set([...plan.steps.filter((n) => !run.reused.has(n.id)).flatMap((n) => n.reads.map((r) => r.table)), ...plan.extraReads]);
+  const readByStep = new Set(plan.steps.flatMap((n) => n.reads.map((r) => r.table)));
+  const needed = new Set([...plan.steps.filter((n) => !run.reused.has(n.id) && !run.skips(n.id)).flatMap((n) => n.reads.map((r) => r.table)),
+    ...(run.mode === "shard" ? [] : plan.extraReads)]);
   const from = run.reuseSource();
   for (const node of plan.sources) {
     const { name, source: src } = node;
+    if (run.mode === "shard" && !needed.has(name)) continue;
+    if (run.mode === "merge" && !needed.has(name) && readByStep.has(name) && !run.catalog) {
+      await takeSource(run, node);
+      continue;
+    }
     if (!needed.has(name) && from) {
       const prev = from.manifest.sources?.find((x) => x.name === name && x.fingerprint === run.prints.get(name)?.fingerprint);
       if (prev) {
@@ -40,7 +53,7 @@ export async function loadSources(run: Run): Promise<void> {
     }
     run.sources.push(withoutFiles(r));
     run.inputs.push(...r.files);
-    fault(`after-source:${name}`);
+    fault(`after-source:${name}`, run.opts.shard?.index);
     ctx.tables.set(name, { name, keys: node.schema.keys, publish: false });
     ctx.progress.info(`source ${name}: ${r.rows_loaded} rows loaded, ${r.rows_rejected} rejected, ${r.rows_filtered} filtered out`);
     await ctx.audits.note(name, "rejected-rows", "warning", r.rows_rejected > 0 ? "fail" : "pass",
@@ -83,7 +96,7 @@ export async function runStep(run: Run, node: StepNode): Promise<void> {
     if (node.reads.some((r) => r.config && ctx.tables.get(r.table)?.step !== undefined)) await node.kind.check?.(ctx, step as never);
     await node.kind.run(ctx, step as never);
   });
-  fault(`after-step:${node.id}`);
+  fault(`after-step:${node.id}`, run.opts.shard?.index);
   const pub = step.publish === undefined || step.publish === true ? {} : step.publish === false ? false : step.publish;
   for (const o of node.outputs) {
     const files = run.streamed.get(o.name);
