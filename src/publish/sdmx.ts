@@ -48,6 +48,12 @@ export const SdmxExport = z.object({
     .describe("the OBS_STATUS code of each case (defaults A, E, F, P; O for a missing value, printed with an empty OBS_VALUE)"),
   estimated_when: Name.optional().describe("a boolean column that marks estimated values (default: mirrored, when the table has it)"),
   forecast_from: z.number().int().optional().describe("the first forecast year (default: the year after the newest data year)"),
+  ranges: z.object({
+    from: Name.describe("a cohort model's <id>_uncertainty table"),
+    lower: Name.default("q05").describe("its column of the lower bound (default q05)"),
+    upper: Name.default("q95").describe("its column of the upper bound (default q95)"),
+    attributes: z.tuple([SdmxId, SdmxId]).default(["OBS_LOWER", "OBS_UPPER"]).describe("the attribute ids of the two bounds (not SDMX cross-domain concepts: agree them with the office)"),
+  }).strict().optional().describe("Monte Carlo bounds of each value as two more attributes, scaled like OBS_VALUE; empty where the table has no range"),
 }).strict();
 export type SdmxExportT = z.output<typeof SdmxExport>;
 
@@ -97,14 +103,32 @@ async function writeSdmx(e: SdmxExportT, x: ExportContext): Promise<OutputFile> 
   const dimSel = dims.map((d, i) => (d.codes ? `c${i}.code` : `CAST(t.${ident(d.column)} AS VARCHAR)`) + ` AS ${ident(d.id)}`);
   const joins = dims.map((d, i) => (d.codes ? `JOIN (SELECT DISTINCT CAST(value AS VARCHAR) AS value, CAST(code AS VARCHAR) AS code FROM ${ident(d.codes)}) c${i} ON c${i}.value = CAST(t.${ident(d.column)} AS VARCHAR)` : "")).join(" ");
   const order = [...dims.map((d) => `t.${ident(d.column)}`), `t.${ident(e.time)}`].join(", ");
+  const bounds = await rangeJoin(s, e, x, columns);
   await s.run(`COPY (SELECT ${lit(e.structure)} AS STRUCTURE, ${lit(`${e.agency}:${e.id}(${e.version})`)} AS STRUCTURE_ID, ${lit(action)} AS ACTION,
       ${dimSel.join(", ")}, CAST(t.${ident(e.time)} AS VARCHAR) AS TIME_PERIOD,
       ${decimalSql(`t.${ident(e.measure)}`, x.baseUnit, e.unit_mult)} AS OBS_VALUE,
-      ${status} AS OBS_STATUS, ${lit(e.unit_measure)} AS UNIT_MEASURE, ${lit(String(e.unit_mult))} AS UNIT_MULT
-    FROM ${ident(e.table)} t ${joins} ORDER BY ${order})
+      ${status} AS OBS_STATUS, ${lit(e.unit_measure)} AS UNIT_MEASURE, ${lit(String(e.unit_mult))} AS UNIT_MULT${bounds.select}
+    FROM ${ident(e.table)} t ${joins} ${bounds.join} ORDER BY ${order})
     TO ${lit(target)} (FORMAT csv, HEADER true, DELIMITER ',', QUOTE '"')`);
   const rows = Number(await s.scalar(`SELECT count(*) FROM read_csv(${lit(target)}, header = true, all_varchar = true)`));
   return { table: e.table, format: "sdmx-csv", file, rows, bytes: statSync(target).size, sha256: sha256(target) };
+}
+
+/** The columns of a ranges table matched to the exported table's rows (key columns shared by name; the special ones apart). */
+const RANGE_SPECIAL = ["total_over", "material", "variable", "year"];
+
+async function rangeJoin(s: Session, e: SdmxExportT, x: ExportContext, columns: string[]): Promise<{ select: string; join: string }> {
+  const r = e.ranges;
+  if (!r) return { select: "", join: "" };
+  const rcols = (await s.all(`SELECT column_name FROM (DESCRIBE ${ident(r.from)})`)).map((c) => String(c.column_name));
+  const shared = rcols.filter((c) => columns.includes(c) && !RANGE_SPECIAL.includes(c) && c !== r.lower && c !== r.upper && !["central", "mean", "sd", "unit"].includes(c) && !/^q\d/.test(c));
+  const on = [...shared.map((c) => `CAST(u.${ident(c)} AS VARCHAR) = CAST(t.${ident(c)} AS VARCHAR)`), `u.year = t.${ident(e.time)}`, "u.total_over IS NULL",
+    `u.variable = ${lit(e.measure)}`, columns.includes("material") ? "u.material = t.material" : "u.material IS NULL"];
+  const [lo, hi] = r.attributes;
+  return {
+    select: `, ${decimalSql(`u.${ident(r.lower)}`, x.baseUnit, e.unit_mult)} AS ${ident(lo)}, ${decimalSql(`u.${ident(r.upper)}`, x.baseUnit, e.unit_mult)} AS ${ident(hi)}`,
+    join: `LEFT JOIN ${ident(r.from)} u ON ${on.join(" AND ")}`,
+  };
 }
 
 const NUMERIC = /^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT)$/;
@@ -127,6 +151,14 @@ function checkSdmx(e: SdmxExportT, c: ExportCheck): void {
   need(e.time, "time");
   need(e.measure, "measure");
   if (!NUMERIC.test(c.columns.get(e.measure)!)) c.fail("measure", `${e.measure} (${c.columns.get(e.measure)}) is not numeric`);
+  if (e.ranges) {
+    const rs = c.schemas.get(e.ranges.from);
+    if (!rs) c.fail("ranges", `no table ${JSON.stringify(e.ranges.from)}; give a cohort model's <id>_uncertainty table`);
+    const names = rs.columns.map((x) => x.name);
+    const missing = [e.ranges.lower, e.ranges.upper, "variable", "year", "total_over", "material"].filter((k) => !names.includes(k));
+    if (missing.length) c.fail("ranges", `table ${e.ranges.from} lacks column(s) ${missing.join(", ")} (an <id>_uncertainty table has variable, year, total_over, material and the quantiles)`);
+    c.reads(e.ranges.from);
+  }
   if (e.estimated_when) {
     need(e.estimated_when, "estimated_when");
     if (c.columns.get(e.estimated_when) !== "BOOLEAN") c.fail("estimated_when", `${e.estimated_when} is not a boolean column`);

@@ -155,6 +155,31 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
       for (const v of ["stock", "inflow", "outflow"]) flows.push({ series: String(x.series), year: Number(x.year), value: Number(x[v] ?? 0), phase: phase.get(s.id)!, variable: v });
     }
   }
+  // Monte Carlo ranges of the stock per series (totals over the other keys), where the steps have them.
+  const ranges = new Map<string, { lo: number; hi: number }>();
+  let rangeNote = "";
+  const rangeTables: string[] = [];
+  for (const s of chain) {
+    const ut = `${s.id}_uncertainty`;
+    if (!r.has(ut)) continue;
+    const ucols = await columns(r, ut);
+    const keys = (s.outputs.find((o) => o.name === mainOf(s))?.keys ?? []).filter((k) => k !== "year");
+    const by = seriesKey([...keys, "year"], await columns(r, mainOf(s)), ["product"]);
+    const q = [...ucols].filter((c) => /^q\d/.test(c)).sort();
+    if (!by || q.length < 2) continue;
+    const over = keys.filter((k) => k !== by).join(",");
+    for (const x of await r.all(`SELECT CAST(${ident(by)} AS VARCHAR) AS series, CAST(year AS INTEGER) AS year, ${ident(q[0]!)} AS lo, ${ident(q[q.length - 1]!)} AS hi
+        FROM ${r.table(ut)} WHERE total_over = '${over.replace(/'/g, "''")}' AND variable = 'stock' AND material IS NULL`)) {
+      ranges.set(`${x.series}\u0000${x.year}\u0000${phase.get(s.id)}`, { lo: Number(x.lo), hi: Number(x.hi) });
+    }
+    const pct = (c: string) => Number(c.slice(1).replace("_", "."));
+    rangeTables.push(ut);
+    rangeNote = ` Shaded: from the ${pct(q[0]!)} % to the ${pct(q[q.length - 1]!)} % quantile of the Monte Carlo draws (${rangeTables.join(", ")}; each draw summed over the other keys before its quantiles are taken).`;
+  }
+  for (const f of flows) {
+    const b = f.variable === "stock" ? ranges.get(`${f.series}\u0000${f.year}\u0000${f.phase}`) : undefined;
+    if (b) Object.assign(f, b);
+  }
   const seam = seamOf(flows, chain, phase);
   const phaseNote = seam !== undefined ? ` History solid, scenario dashed from ${seam + 0.5} (dotted rule at the seam).` : "";
   if (flows.length) {
@@ -165,7 +190,7 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
     items.push({
       spec: panels({
         title: `Stock in use by product (${names}, ${s.unit})`,
-        description: `${describe("Stock in use by product, summed over regions", stock, s.unit)} Each panel has its own scale.${phaseNote}`,
+        description: `${describe("Stock in use by product, summed over regions", stock, s.unit)} Each panel has its own scale.${phaseNote}${rangeNote}`,
         rows: stock, yTitle: s.unit, seriesTitle: "product", seam,
       }),
     });

@@ -42,6 +42,9 @@ export interface YearRow {
   series: string;
   /** history or scenario (drawn dashed) */
   phase?: string;
+  /** A Monte Carlo range of the value (drawn as a band), when the run has one. */
+  lo?: number;
+  hi?: number;
 }
 
 /** Lines over the years, one per series; a scenario phase dashed, and a rule where it starts. */

@@ -33,7 +33,11 @@ export interface AgeRow {
 export function scaled<T extends { value: number }>(rows: T[], unit: string): { rows: T[]; unit: string } {
   const max = rows.reduce((m, r) => Math.max(m, Math.abs(r.value)), 0);
   const [f, word] = max >= 1e10 ? [1e9, "billion "] : max >= 1e7 ? [1e6, "million "] : max >= 1e4 ? [1e3, "thousand "] : [1, ""];
-  return { rows: f === 1 ? rows : rows.map((r) => ({ ...r, value: r.value / f })), unit: `${word}${unit}`.trim() };
+  const sc = (r: T): T => {
+    const x = r as T & { lo?: number; hi?: number };
+    return { ...r, value: r.value / f, ...(x.lo !== undefined ? { lo: x.lo / f } : {}), ...(x.hi !== undefined ? { hi: x.hi / f } : {}) };
+  };
+  return { rows: f === 1 ? rows : rows.map(sc), unit: `${word}${unit}`.trim() };
 }
 
 /** Keep the `max` largest series (by the sum of |value|); the others are summed into one "other (n)" series. */
@@ -54,7 +58,11 @@ export function lumpSeries<T extends { series: string; value: number; year?: num
     const s = sums.get(k);
     if (s) s.value += r.value;
     else {
-      const n = { ...r, series: other };
+      // A range of a sum is not the sum of ranges: lumped series carry none.
+      const { lo: _lo, hi: _hi, ...rest } = r as T & { lo?: number; hi?: number };
+      void _lo;
+      void _hi;
+      const n = { ...rest, series: other } as T;
       sums.set(k, n);
       out.push(n);
     }
@@ -137,7 +145,15 @@ export function panels(o: { title: string; description: string; rows: YearRow[];
     data: { values: o.rows },
     facet: { field: "series", type: "nominal", title: null, header: { labelFontSize: 12, labelFontWeight: "bold" } },
     columns: o.columns ?? columnsFor(o.rows),
-    spec: { width: 190, height: 120, layer: [{ mark: { type: "line", strokeWidth: 1.6, color: "#3b6ea8" }, encoding: enc }, ...seamLayer(o.seam, true)] },
+    spec: {
+      width: 190, height: 120,
+      layer: [
+        // The Monte Carlo range (lo–hi) as a band behind the line, where the rows carry one.
+        ...(o.rows.some((r) => r.lo !== undefined)
+          ? [{ mark: { type: "area", opacity: 0.2, color: "#3b6ea8" }, encoding: { x: enc.x, y: { field: "lo", type: "quantitative", title: o.yTitle }, y2: { field: "hi" } } }]
+          : []),
+        { mark: { type: "line", strokeWidth: 1.6, color: "#3b6ea8" }, encoding: enc }, ...seamLayer(o.seam, true)],
+    },
     resolve: { scale: { y: "independent" } },
     config: CONFIG,
   } as unknown as VlSpec;

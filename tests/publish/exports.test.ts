@@ -89,6 +89,22 @@ describe("SDMX-CSV 2.0 (SDMX-CSV format specification v2.0.0)", () => {
     }
   });
 
+  it("ranges: OBS_LOWER and OBS_UPPER are the uncertainty table's 5 % and 95 % quantiles, scaled like OBS_VALUE", async () => {
+    const rows = csv("sdmx/stocks_materials.csv");
+    const header = readFileSync(path.join(run, "sdmx", "stocks_materials.csv"), "utf8").split("\n")[0]!.split(",");
+    expect(header.slice(-2)).toEqual(["OBS_LOWER", "OBS_UPPER"]);
+    const region = new Map([...(parse(readFileSync(path.join(ROOT, "data-samples", "demo", "office_region_codes.csv"), "utf8"), { columns: true }) as { value: string; code: string }[])].map((r) => [r.code, r.value]));
+    const mat = new Map([...(parse(readFileSync(path.join(ROOT, "data-samples", "demo", "office_material_codes.csv"), "utf8"), { columns: true }) as { value: string; code: string }[])].map((r) => [r.code, r.value]));
+    const u = await s.all(`SELECT region, product, material, year, q05, q95 FROM '${run}/stocks_uncertainty.parquet' WHERE total_over IS NULL AND variable = 'stock' AND material IS NOT NULL`);
+    const want = new Map(u.map((r) => [`${r.region}|${r.product}|${r.material}|${r.year}`, [Number(r.q05), Number(r.q95)]]));
+    expect(rows.length).toBe(want.size);
+    for (const r of rows) {
+      const [lo, hi] = want.get(`${region.get(r.REF_AREA!)}|${r.PRODUCT}|${mat.get(r.MATERIAL!)}|${r.TIME_PERIOD}`)!;
+      expect(Math.abs(Number(r.OBS_LOWER) * 1000 - lo!)).toBeLessThanOrEqual(0.5e-6 + Math.abs(lo!) * 1e-15);
+      expect(Math.abs(Number(r.OBS_UPPER) * 1000 - hi!)).toBeLessThanOrEqual(0.5e-6 + Math.abs(hi!) * 1e-15);
+    }
+  });
+
   it("a release that replaces an earlier one says R; a provisional one marks its values P", () => {
     const dir = tmp("cairn-sdmx-");
     expect(cli(["run", DEMO, "--release", "r1", "--catalog", path.join(dir, "c"), "--quiet"]).code).toBe(0);

@@ -130,7 +130,17 @@ describe("renderReport on the demo run", () => {
         expect(close(stock.find((x) => x.series === w.product && x.year === year && x.phase === phase)!.value * f2, Number(w.v))).toBe(true);
       }
     }
+    // Ranges: the band is the uncertainty table's 5 % and 95 % quantiles of the per-draw totals
+    // over regions (never a sum of the regions' quantiles).
+    const lohi = stock as (Row & { lo?: number; hi?: number })[];
+    for (const w of await s.all(`SELECT product, q05, q95 FROM ${pq("stocks_uncertainty.parquet")} WHERE total_over = 'region' AND variable = 'stock' AND material IS NULL AND year = 2000`)) {
+      const x = lohi.find((y) => y.series === w.product && y.year === 2000 && y.phase === "history")!;
+      expect(close(x.lo! * f2, Number(w.q05))).toBe(true);
+      expect(close(x.hi! * f2, Number(w.q95))).toBe(true);
+      expect(x.lo!).toBeLessThan(x.hi!);
+    }
     const spec = JSON.stringify(specs[2]);
+    expect(spec).toContain('"mark":{"type":"area"');
     expect(spec).toContain('"strokeDash":{"field":"phase"');
     expect(spec).toContain(`"calculate":"${last + 0.5}"`);
     // Age structure: the stock of the newest year is the sum of what remains of each cohort
