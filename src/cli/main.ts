@@ -13,6 +13,8 @@ import { registerDiff } from "./diff.js";
 import { registerDescribe } from "./describe.js";
 import { registerReport } from "./report.js";
 import { registerMerge } from "./merge.js";
+import { registerSubmit } from "./submit.js";
+import { registerStatus } from "./status.js";
 
 // Output piped into a program that stops reading (head, say) ends the command quietly.
 process.stdout.on("error", (e: NodeJS.ErrnoException) => {
@@ -40,6 +42,8 @@ registerDiff(program);
 registerDescribe(program);
 registerReport(program);
 registerMerge(program);
+registerSubmit(program);
+registerStatus(program);
 
 program.parseAsync(process.argv).catch((e: unknown) => {
   process.stderr.write(`cairn: ${(e as Error).message ?? String(e)}\n`);

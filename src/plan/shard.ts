@@ -192,8 +192,10 @@ const RULES: Record<string, (n: StepNode, c: RuleCtx) => Verdict> = {
   },
 
   "cohort-model"(n, c) {
-    const o = n.step as unknown as { input: string; keys: string[]; lifetimes: string; curves?: string; content?: string; initial_stock?: string; continues?: { step: string } };
+    const o = n.step as unknown as { input: string; keys: string[]; lifetimes: string; curves?: string; content?: string; initial_stock?: string; continues?: { step: string }; uncertainty?: unknown };
     if (!o.keys.includes(c.by)) refuse(`${c.by} is not among its series keys (${o.keys.join(", ")})`);
+    // Monte Carlo: draws are made per lifetimes row used and per material for the step's whole set of series, and totals sum over series.
+    if (o.uncertainty) refuse("its Monte Carlo draws are made for the whole set of series it runs (lifetimes rows used, materials) and its totals and sensitivity indices combine series of every shard; splitting draws is not supported yet");
     const d: [string, SourceMode[]][] = [];
     keyedInput(c, o.input, d);
     if (o.initial_stock) keyedInput(c, o.initial_stock, d);

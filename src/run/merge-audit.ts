@@ -7,9 +7,9 @@
  * - a check whose items do not name the key (one per lifetimes row, say): every item was kept
  *   in the shard (passing ones too); each is taken once (shards that share it must agree on it
  *   exactly), and the summary is made from them;
- * - a note (a count decided outside SQL): kept when every shard wrote the same; otherwise the
- *   counts are added, and the message is written again from NOTE_MESSAGES (or, for a note not
- *   listed there, the shards' messages are listed).
+ * - a note (a count decided outside SQL, of what the shard holds): the counts are added, and the
+ *   message is written again from NOTE_MESSAGES; a note not listed there keeps its message when
+ *   every shard wrote the same text without numbers, else the shards' messages are listed.
  */
 import { lit } from "../engine/sql.js";
 import { AUDIT_TABLE } from "../audit/log.js";
@@ -17,6 +17,7 @@ import type { StepNode } from "../plan/build.js";
 import { ClusterError } from "../cluster/errors.js";
 import { ITEMS_FILE, type CheckMeta } from "./shard.js";
 import type { Run } from "./runner.js";
+import { withKeys } from "./merge.js";
 import path from "node:path";
 
 /** Messages of notes whose text carries counts, as the steps write them (src/steps/cohort-model/audits.ts). */
@@ -38,7 +39,7 @@ const itemsMessage = (n: number, failed: number) => `${n} items checked, ${n - f
 
 export async function mergeStepAudits(run: Run, node: StepNode): Promise<void> {
   const s = run.ctx.session;
-  const shards = run.opts.merge!.shards;
+  const shards = withKeys(run);
   const idx = node.index + 1;
   const M = "__cairn_merge_audit";
   const I = "__cairn_merge_items";
@@ -55,24 +56,21 @@ export async function mergeStepAudits(run: Run, node: StepNode): Promise<void> {
   const where = (c: string) => `"check" = ${lit(c)}`;
   for (const c of checks.values()) {
     if (c.method === "note") {
-      const rows = await s.all(`SELECT shard, severity, status, items, failed, observed, expected, unit, message FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary' ORDER BY shard`);
-      const sig = (r: Record<string, unknown>) => JSON.stringify([r.severity, r.status, r.items, r.failed, r.observed, r.expected, r.unit, r.message], (_k, v) => (typeof v === "bigint" ? String(v) : v));
-      if (rows.every((r) => sig(r) === sig(rows[0]!))) {
-        await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, step, "check", severity, status, row_kind, keys, year, observed, expected, residual, tolerance, unit, items, failed,
-          worst_residual, worst_failing_residual, message FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary' AND shard = ${Number(rows[0]!.shard)}`);
-      } else {
-        const items = rows.reduce((a, r) => a + Number(r.items), 0);
-        const failed = rows.reduce((a, r) => a + Number(r.failed), 0);
-        const messages = rows.map((r) => String(r.message));
-        const message = NOTE_MESSAGES[c.check]?.({ step: node.id, items, failed, messages })
-          ?? `${items} items over ${rows.length} shards, ${failed} failed: ${rows.map((r) => `shard ${r.shard}: ${r.message}`).join("; ")}`;
-        await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, ${lit(node.id)}, ${lit(c.check)}, any_value(severity),
-            CASE WHEN sum(failed) > 0 OR bool_or(status = 'fail') THEN 'fail' ELSE 'pass' END, 'summary', MAP {}::MAP(VARCHAR, VARCHAR), NULL,
-            CASE WHEN count(observed) = count(*) THEN sum(observed) END, CASE WHEN count(expected) = count(*) THEN sum(expected) END,
-            CASE WHEN count(observed) = count(*) AND count(expected) = count(*) THEN sum(observed) - sum(expected) END, NULL, any_value(unit),
-            CAST(sum(items) AS BIGINT), CAST(sum(failed) AS BIGINT), NULL, NULL, ${lit(message)}
-          FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
-      }
+      // A note counts what its shard holds (series, say): the counts are added, and the message is written again.
+      const rows = await s.all(`SELECT shard, message FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary' ORDER BY shard`);
+      const r = await s.one(`SELECT CAST(sum(items) AS BIGINT) AS n, CAST(sum(failed) AS BIGINT) AS f FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
+      const items = Number(r.n);
+      const failed = Number(r.f);
+      const messages = rows.map((x) => String(x.message));
+      const message = NOTE_MESSAGES[c.check]?.({ step: node.id, items, failed, messages })
+        ?? (messages.every((m) => m === messages[0]) && !/\d/.test(messages[0]!) ? messages[0]!
+          : `${items} items over ${rows.length} shards, ${failed} failed: ${rows.map((x) => `shard ${x.shard}: ${x.message}`).join("; ")}`);
+      await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, ${lit(node.id)}, ${lit(c.check)}, any_value(severity),
+          CASE WHEN sum(failed) > 0 OR bool_or(status = 'fail') THEN 'fail' ELSE 'pass' END, 'summary', MAP {}::MAP(VARCHAR, VARCHAR), NULL,
+          CASE WHEN count(observed) = count(*) THEN sum(observed) END, CASE WHEN count(expected) = count(*) THEN sum(expected) END,
+          CASE WHEN count(observed) = count(*) AND count(expected) = count(*) THEN sum(observed) - sum(expected) END, NULL, any_value(unit),
+          ${items}, ${failed}, NULL, NULL, ${lit(message)}
+        FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
     } else if (c.global) {
       if (c.method !== "check") throw new ClusterError(`audit ${node.id} ${c.check}: its items do not name ${run.sp!.by}, so they cannot be added up across shards; run this pipeline without shards`);
       const clash = await s.all(`SELECT CAST(keys AS VARCHAR) AS k, year FROM ${I} WHERE ${where(c.check)} GROUP BY CAST(keys AS VARCHAR), year

@@ -183,12 +183,19 @@ export async function takeSource(run: Run, node: SourceNode): Promise<void> {
 
 /** The Parquet files of a table in every shard, checked against the shards' manifests. */
 function shardFiles(run: Run, table: string): string[] {
-  return run.opts.merge!.shards.flatMap((sh) => filesOf(run, sh, table));
+  return withKeys(run).flatMap((sh) => filesOf(run, sh, table));
+}
+
+/** The shards that hold keys (with more shards than key values, some hold none and computed nothing). */
+export function withKeys(run: Run): ShardDir[] {
+  const out = run.opts.merge!.shards.filter((sh) => sh.manifest.shard.keys.length > 0);
+  if (!out.length) throw new ClusterError(`no shard holds any ${run.sp!.by} value: the sources cut by ${run.sp!.by} have no rows`);
+  return out;
 }
 
 /** A table of every shard as one relation, with the shard's index in `__shard`. */
 function byShard(run: Run, table: string): string {
-  return `(${run.opts.merge!.shards.map((sh) => `SELECT ${sh.index} AS __shard, * FROM read_parquet([${filesOf(run, sh, table).map(lit).join(", ")}])`).join(" UNION ALL ")})`;
+  return `(${withKeys(run).map((sh) => `SELECT ${sh.index} AS __shard, * FROM read_parquet([${filesOf(run, sh, table).map(lit).join(", ")}])`).join(" UNION ALL ")})`;
 }
 
 /** A table's files in one shard, each checked once against the SHA-256 the shard's manifest records. */

@@ -295,7 +295,8 @@ export class Run {
       // The small tables that configure steps, checked before any step runs (the same checks as `cairn check`).
       for (const node of plan.steps) if (!this.reused.has(node.id) && !this.skips(node.id)) await node.kind.check?.(this.ctx, node.step as never);
       for (const node of plan.steps) {
-        if (this.mode === "shard" && this.skips(node.id)) continue;
+        // A shard with no keys (more shards than key values) computes nothing; the merge passes it by.
+        if (this.mode === "shard" && (this.skips(node.id) || this.shardKeys?.own.length === 0)) continue;
         if (this.reused.has(node.id)) await reuseStep(this, node);
         else if (this.skips(node.id)) await takeStep(this, node);
         else await runStep(this, node);
