@@ -28,6 +28,12 @@ function layout(input: TableSchema, o: O): { values: string[]; rest: string[]; s
   return { values, rest, sel, keys: keys.filter((k) => sel.some((c) => c.name === k)) };
 }
 
+/** The `<input>_uncertainty` table when the input is a cohort model with uncertainty keyed by `by`. */
+function rangesOf(steps: readonly { id: string; kind: string }[], o: O): string | null {
+  const p = steps.find((x) => x.id === o.input) as { kind: string; keys?: string[]; uncertainty?: unknown } | undefined;
+  return p && p.kind === "cohort-model" && p.uncertainty && p.keys?.includes(o.by) ? `${o.input}_uncertainty` : null;
+}
+
 export const aggregateStep = defineStep({
   kind: "aggregate",
   summary: "sum a table over groups of one key column defined by a table (member → group); audits mass conservation and members in no group",
@@ -45,7 +51,17 @@ export const aggregateStep = defineStep({
     const notNumbers = input.columns.filter((c) => values.includes(c.name) && !/^(DOUBLE|FLOAT|REAL|DECIMAL.*|HUGEINT|BIGINT|INTEGER|SMALLINT|TINYINT|UBIGINT|UINTEGER|USMALLINT|UTINYINT)$/.test(c.type));
     if (notNumbers.length) ctx.fail("values", `${notNumbers.map((c) => `${c.name} (${c.type})`).join(", ")} cannot be summed; values are numeric columns`);
     const columns = sel.map((c) => (c.name === o.by ? { ...c, description: `group of ${o.by} (${o.groups}: member → group)`, groups: { table: o.groups, member: "member", group: "group" } } : c));
-    return [{ name: o.id, role: "main", description: `${o.input} summed over the groups of ${o.by} in ${o.groups}`, keys, columns }];
+    const out: OutputDecl[] = [{ name: o.id, role: "main", description: `${o.input} summed over the groups of ${o.by} in ${o.groups}`, keys, columns }];
+    // A cohort model's ranges, summed draw by draw over the same groups (the model computes them: uncertainty totals).
+    const from = rangesOf(ctx.pipeline.steps, o);
+    if (from) {
+      const u = ctx.schemaOf(from, "input");
+      out.push({
+        name: `${o.id}_uncertainty`, role: "detail", description: `Monte Carlo ranges of ${o.id}: ${o.input}'s draws summed over the groups of ${o.by} in ${o.groups} draw by draw (never a sum of quantiles)`,
+        keys: u.keys, columns: u.columns.map((c) => (c.name === o.by ? { ...c, type: "VARCHAR", description: `the group of ${o.by} (${o.groups})` } : c)),
+      });
+    }
+    return out;
   },
   async check(ctx, o) {
     if (!ctx.tables.has(o.groups)) return;
@@ -79,6 +95,8 @@ export const aggregateStep = defineStep({
         failMessage: "group total differs from the sum of its members",
       });
     }
+    const from = rangesOf(ctx.pipeline.steps, o);
+    if (from) await groupRanges(ctx, o, from, values);
     await ctx.audits.check({
       step: o.id, check: "aggregate-ungrouped", severity: "warning", unit: "rows",
       items: `SELECT ${keyMap([o.by])} AS keys, NULL AS year, CASE WHEN bool_or(g.member IS NULL) THEN count(*) ELSE 0 END AS observed, 0 AS expected, 0 AS tolerance,
@@ -90,3 +108,31 @@ export const aggregateStep = defineStep({
     });
   },
 });
+
+/**
+ * `<id>_uncertainty`: the rows of the cohort model's ranges summed over this step's groups (the
+ * model sums every draw over each group), and the check that their central values are this
+ * step's own sums.
+ */
+async function groupRanges(ctx: Parameters<typeof aggregateStep.run>[0], o: O, from: string, values: string[]): Promise<void> {
+  const s = ctx.session;
+  const cols = (await s.columns(from)).map((c) => c.name);
+  const keys = ctx.requireTable(from, "input").keys;
+  const label = `${o.by}:${o.groups}`;
+  await s.run(`CREATE OR REPLACE TABLE ${ident(`${o.id}_uncertainty`)} AS
+    SELECT ${cols.map((c) => (c === o.by ? `CAST(${ident(c)} AS VARCHAR) AS ${ident(c)}` : ident(c))).join(", ")} FROM ${ident(from)}
+    WHERE total_over = ${lit(label)} ORDER BY ${keys.map(ident).join(", ")}`);
+  const vars = ["inflow", "outflow", "stock"].filter((v) => values.includes(v));
+  if (!vars.length) return;
+  const other = keys.filter((k) => !["total_over", "material", "variable", "year"].includes(k));
+  await ctx.audits.check({
+    step: o.id, check: "uncertainty-central", severity: "error",
+    items: `SELECT ${keyMap(other, "u")} AS keys, CAST(u.year AS INTEGER) AS year, u.central AS observed,
+        CASE u.variable ${vars.map((v) => `WHEN ${lit(v)} THEN a.${ident(v)}`).join(" ")} END AS expected,
+        ${ctx.pipeline.audit.conservation_rtol} * abs(u.central) + ${ctx.pipeline.audit.balance_atol} AS tolerance,
+        'range of ' || u.variable || ': central ' || printf('%.10g', u.central) || ' is not this step''s total' AS message
+      FROM ${ident(`${o.id}_uncertainty`)} u JOIN ${ident(o.id)} a ON ${other.map((k) => `CAST(a.${ident(k)} AS VARCHAR) = CAST(u.${ident(k)} AS VARCHAR)`).join(" AND ")} AND a.year = u.year
+      WHERE u.material IS NULL AND u.variable IN (${vars.map(lit).join(", ")})`,
+    failMessage: "the ranges' central values differ from the group totals",
+  });
+}

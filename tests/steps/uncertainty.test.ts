@@ -33,11 +33,12 @@ function files(dir: string): void {
     "inflow.csv": inflow.join("\n") + "\n",
     "initial.csv": init.join("\n") + "\n",
     "lifetimes.csv": "product,first_cohort,last_cohort,distribution,mean,sd\ncars,,2009,normal,12,4\ncars,2010,,normal,14,4\nhouses,,,lognormal,40,12\n",
+    "groups.csv": "member,group\nA,AB\nB,AB\nB,BONLY\n",
     "content.csv": "product,material,first_cohort,last_cohort,content\ncars,steel,,2011,0.7\ncars,steel,2012,,0.6\ncars,alu,,,0.1\nhouses,cement,,,0.8\n",
   });
 }
 
-function pipeline(dir: string, uncertainty: string, withInit = true): string {
+function pipeline(dir: string, uncertainty: string, withInit = true, extra = ""): string {
   const f = path.join(dir, `p-${Math.random().toString(36).slice(2)}.yaml`);
   write(dir, {
     [path.basename(f)]: `name: u
@@ -47,6 +48,7 @@ sources:
   initial: { path: initial.csv, unit: t, columns: { region: {type: text, key: true}, product: {type: text, key: true}, age: {type: integer, key: true}, value: quantity } }
   lifetimes: { path: lifetimes.csv, columns: { product: text, first_cohort: {type: integer, nullable: true}, last_cohort: {type: integer, nullable: true}, distribution: text, mean: number, sd: number } }
   content: { path: content.csv, columns: { product: text, material: text, first_cohort: {type: integer, nullable: true}, last_cohort: {type: integer, nullable: true}, content: number } }
+  groups: { path: groups.csv, columns: { member: text, group: text } }
 steps:
   - id: m
     kind: cohort-model
@@ -57,7 +59,7 @@ steps:
     content: content
 ${withInit ? "    initial_stock: initial\n" : ""}    uncertainty:
 ${uncertainty.split("\n").map((l) => `      ${l}`).join("\n")}
-`,
+${extra}`,
   });
   return f;
 }
@@ -128,6 +130,25 @@ describe("cohort-model uncertainty", () => {
     const audit = await q(`SELECT status, items FROM read_parquet(${lit(path.join(out, "audit.parquet"))}) WHERE "check" = 'uncertainty-totals' AND row_kind = 'summary'`);
     expect(audit[0]!.status).toBe("pass");
     expect(Number(audit[0]!.items)).toBeGreaterThan(0);
+  });
+
+  it("an aggregate step over groups gets ranges summed draw by draw (a member in two groups counted in each)", async () => {
+    const out = path.join(dir, "groups");
+    run(pipeline(dir, "draws: 200\nlifetimes: { mean: { family: normal, rel_sd: 0.2, truncate_below: 0 } }", true,
+      "  - { id: by_group, kind: aggregate, input: m, groups: groups, by: region, values: [inflow, outflow, stock] }\n"), out);
+    const g = await q(`SELECT region, product, year, central, mean FROM read_parquet(${lit(path.join(out, "by_group_uncertainty.parquet"))}) WHERE variable = 'stock' AND material IS NULL AND year = 2020 ORDER BY 1, 2`);
+    const series = await q(`SELECT region, product, mean FROM read_parquet(${lit(path.join(out, "m_uncertainty.parquet"))}) WHERE total_over IS NULL AND variable = 'stock' AND material IS NULL AND year = 2020`);
+    const agg = await q(`SELECT region, product, stock FROM read_parquet(${lit(path.join(out, "by_group.parquet"))}) WHERE year = 2020`);
+    expect(g.map((r) => `${r.region}/${r.product}`)).toEqual(["AB/cars", "AB/houses", "BONLY/cars", "BONLY/houses"]);
+    for (const r of g) {
+      const members = r.region === "AB" ? ["A", "B"] : ["B"];
+      // Linearity of expectation: the mean of the per-draw group sums is the sum of the members' means.
+      const sm = series.filter((x) => members.includes(String(x.region)) && x.product === r.product).reduce((a, x) => a + Number(x.mean), 0);
+      expect(Number(r.mean)).toBeCloseTo(sm, 4);
+      expect(Number(r.central)).toBeCloseTo(Number(agg.find((x) => x.region === r.region && x.product === r.product)!.stock), 4);
+    }
+    const audit = await q(`SELECT "check", status FROM read_parquet(${lit(path.join(out, "audit.parquet"))}) WHERE "check" IN ('uncertainty-central', 'uncertainty-totals') AND row_kind = 'summary' ORDER BY 1`);
+    expect(audit.map((a) => `${a.check}:${a.status}`)).toEqual(["uncertainty-central:pass", "uncertainty-totals:pass"]);
   });
 
   it("sensitivity: one uncertain assumption explains all of the variance (S = ST = 1)", async () => {

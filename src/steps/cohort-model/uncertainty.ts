@@ -96,8 +96,8 @@ type RowOf = (c: Curve) => number;
 interface Built {
   job: McJob;
   assumptions: (typeof ASSUMPTIONS)[number][];
-  /** Totals: for each cell, its level and key values (null where summed over). */
-  cells: { level: number; values: (string | null)[] }[];
+  /** Totals: for each cell, what it sums over (total_over) and its key values (null where summed over). */
+  cells: { over: string; values: (string | null)[] }[];
 }
 
 function rowSpread(raw: Record<string, unknown>, p: string): Spread | null {
@@ -153,8 +153,15 @@ function concat(a: Float64Array | null, b: Float64Array | null, N: number): Floa
   return out;
 }
 
+/** An aggregate step downstream that sums this model's table over groups of one key. */
+export interface GroupTotal {
+  by: string;
+  table: string;
+  groups: Map<string, Set<string>>;
+}
+
 export function buildJob(o: O, inp: Inputs, groups: Group[], A: number, rowOf: RowOf, lt: { rows: ParamRow[] }, curveTables: CurveTable,
-  content: { rows: ParamRow[]; keyCols: string[] } | null, materials: string[], curveLength: number, sobol: boolean): Built {
+  content: { rows: ParamRow[]; keyCols: string[] } | null, materials: string[], curveLength: number, sobol: boolean, groupTotals: GroupTotal[] = []): Built {
   const u = o.uncertainty!;
   const { n, T } = inp;
   const M = materials.length;
@@ -228,19 +235,32 @@ export function buildJob(o: O, inp: Inputs, groups: Group[], A: number, rowOf: R
     }
     return { sids: Int32Array.from(g.sids), cohortRow, initRow, initFixed };
   });
-  // Totals: cells per level, numbered in the order of the series (key order).
+  // Totals: cells per level, numbered in the order of the series (key order). The levels of
+  // `totals:`, then one level per group of each aggregate step that sums this model's table
+  // (a member may belong to several groups: one level each).
   const cells: Built["cells"] = [];
-  const index = new Int32Array(u.totals.length * n).fill(-1);
-  u.totals.forEach((level, l) => {
+  const levels: { over: string; cell: (sid: number) => (string | null)[] | null }[] = u.totals.map((level) => {
+    const over = o.keys.filter((k) => !level.includes(k));
+    return { over: over.length ? over.join(",") : "(none)", cell: (sid) => o.keys.map((k, i) => (level.includes(k) ? inp.keyValues[sid]![i]! : null)) };
+  });
+  for (const a of groupTotals) {
+    const bi = o.keys.indexOf(a.by);
+    for (const [group, members] of a.groups) {
+      levels.push({ over: `${a.by}:${a.table}`, cell: (sid) => (members.has(inp.keyValues[sid]![bi]!) ? o.keys.map((k, i) => (i === bi ? group : inp.keyValues[sid]![i]!)) : null) });
+    }
+  }
+  const index = new Int32Array(levels.length * n).fill(-1);
+  levels.forEach((level, l) => {
     const at = new Map<string, number>();
     for (let sid = 0; sid < n; sid++) {
-      const values = o.keys.map((k, i) => (level.includes(k) ? inp.keyValues[sid]![i]! : null));
+      const values = level.cell(sid);
+      if (!values) continue;
       const key = JSON.stringify(values);
       let c = at.get(key);
       if (c === undefined) {
         c = cells.length;
         at.set(key, c);
-        cells.push({ level: l, values });
+        cells.push({ over: level.over, values });
       }
       index[l * n + sid] = c;
     }
@@ -256,7 +276,7 @@ export function buildJob(o: O, inp: Inputs, groups: Group[], A: number, rowOf: R
     ltValues: tables.ltValues, ltDraws: D, groups: mcGroups, values: inp.value, initAmounts: amountsAll, M, content: contentAll, initContent: initContentAll,
     ctFactors: tables.ctFactors, ctDraws: D,
     input: u.input ? { spread: u.input.spread, correlation: u.input.correlation, seed: u.seed * 7 + 3 } : null,
-    probabilities: u.quantiles, variables: u.variables, totals: { index, levels: u.totals.length, cells: cells.length },
+    probabilities: u.quantiles, variables: u.variables, totals: { index, levels: levels.length, cells: cells.length },
     sobol: sobol ? { base: u.sensitivity!.base, assumptions, resamples: u.sensitivity!.resamples, confidence: u.sensitivity!.confidence, seed: u.seed + 2 } : null,
   };
   return { job, assumptions, cells };
@@ -277,14 +297,10 @@ const VAR_NAMES = ["inflow", "outflow", "stock"] as const;
 /** The totals cells as a table: cell, total_over and the key values kept. */
 async function writeCells(ctx: StepContext, o: O, name: string, cells: Built["cells"]): Promise<void> {
   const s = ctx.session;
-  const u = o.uncertainty!;
   const cols = o.keys.map((k) => `${ident(k)} VARCHAR`).join(", ");
   await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(name)} (cell INTEGER, total_over VARCHAR, ${cols})`);
   for (let i = 0; i < cells.length; i += 500) {
-    const part = cells.slice(i, i + 500).map((c, j) => {
-      const over = o.keys.filter((k) => !u.totals[c.level]!.includes(k));
-      return `(${i + j}, ${lit(over.length ? over.join(",") : "(none)")}, ${c.values.map((v) => (v === null ? "NULL" : lit(v))).join(", ")})`;
-    });
+    const part = cells.slice(i, i + 500).map((c, j) => `(${i + j}, ${lit(c.over)}, ${c.values.map((v) => (v === null ? "NULL" : lit(v))).join(", ")})`);
     await s.run(`INSERT INTO ${ident(name)} VALUES ${part.join(", ")}`);
   }
 }
@@ -295,7 +311,8 @@ export async function runUncertainty(ctx: StepContext, o: O, inp: Inputs, groups
   const s = ctx.session;
   const { n, T, y0 } = inp;
   const M = materials.length;
-  const built = buildJob(o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, false);
+  const gt = await groupTotals(ctx, o);
+  const built = buildJob(o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, false, gt);
   ctx.progress.info(`step ${o.id}: Monte Carlo, ${built.job.runs} draws of ${n} series × ${T} years over ${built.assumptions.join(", ")}`);
   const mc = await run(ctx, o, built.job, `${u.draws} draws`);
   const P = u.quantiles.length;
@@ -377,20 +394,47 @@ export async function runUncertainty(ctx: StepContext, o: O, inp: Inputs, groups
       FROM ${ident(raw)} r LEFT JOIN ${ident(sidTable(o))} m ON r.kind = 0 AND m.sid = r.id LEFT JOIN ${ident(cellsT)} c ON r.kind = 1 AND c.cell = r.id
       JOIN ${ident(names)} nm ON nm.mi = r.mi) x
     ORDER BY ${K.join(" NULLS LAST, ")} NULLS LAST, total_over NULLS FIRST, material NULLS FIRST, variable, year`);
-  await totalsAudit(ctx, o, name);
-  if (u.sensitivity) await sensitivity(ctx, o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, cellsT);
+  await totalsAudit(ctx, o, name, gt);
+  if (u.sensitivity) await sensitivity(ctx, o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, cellsT, gt);
   for (const t of [raw, cellsT, names]) await s.run(`DROP TABLE IF EXISTS ${ident(t)}`);
 }
 
+/** The aggregate steps that sum this model's main table over groups of one of its keys, with their groups. */
+async function groupTotals(ctx: StepContext, o: O): Promise<GroupTotal[]> {
+  const out: GroupTotal[] = [];
+  for (const st of ctx.pipeline.steps) {
+    const a = st as unknown as { kind: string; input?: string; by?: string; groups?: string };
+    if (a.kind !== "aggregate" || a.input !== o.id || !a.groups || !ctx.tables.has(a.groups)) continue;
+    const by = a.by ?? "region";
+    if (!o.keys.includes(by) || out.some((x) => x.by === by && x.table === a.groups)) continue;
+    const groups = new Map<string, Set<string>>();
+    for (const r of await ctx.session.all(`SELECT DISTINCT CAST("group" AS VARCHAR) AS g, CAST(member AS VARCHAR) AS m FROM ${ident(a.groups)} WHERE "group" IS NOT NULL AND member IS NOT NULL ORDER BY 1, 2`)) {
+      const set = groups.get(String(r.g)) ?? new Set<string>();
+      set.add(String(r.m));
+      groups.set(String(r.g), set);
+    }
+    out.push({ by, table: a.groups, groups });
+  }
+  return out;
+}
+
 /** Totals must come from per-draw sums: their mean is the sum of the series' means, their sd at most the sum of their sds. */
-async function totalsAudit(ctx: StepContext, o: O, table: string): Promise<void> {
+async function totalsAudit(ctx: StepContext, o: O, table: string, gt: GroupTotal[]): Promise<void> {
   const K = o.keys.map((k) => ident(k));
-  const sameKept = o.keys.map((k) => `(t.${ident(k)} IS NULL OR CAST(t.${ident(k)} AS VARCHAR) = CAST(s.${ident(k)} AS VARCHAR))`).join(" AND ");
-  const agg = `SELECT t.total_over, ${K.map((k) => `t.${k}`).join(", ")}, t.material, t.variable, t.year, any_value(t.mean) AS tm, any_value(t.sd) AS tsd,
+  // A total's series: those agreeing on every key it keeps; for a group total, those whose key is a member of the group.
+  const part = (where: string, match: (k: string) => string) => `SELECT t.total_over, ${K.map((k) => `t.${k}`).join(", ")}, t.material, t.variable, t.year, any_value(t.mean) AS tm, any_value(t.sd) AS tsd,
       sum(s.mean) AS sm, sum(s.sd) AS ssd
-    FROM ${ident(table)} t JOIN ${ident(table)} s ON s.total_over IS NULL AND t.total_over IS NOT NULL AND ${sameKept}
+    FROM ${ident(table)} t JOIN ${ident(table)} s ON s.total_over IS NULL AND ${where} AND ${o.keys.map(match).join(" AND ")}
       AND s.material IS NOT DISTINCT FROM t.material AND s.variable = t.variable AND s.year = t.year
     GROUP BY ALL`;
+  const kept = (k: string) => `(t.${ident(k)} IS NULL OR CAST(t.${ident(k)} AS VARCHAR) = CAST(s.${ident(k)} AS VARCHAR))`;
+  const parts = [part("t.total_over IS NOT NULL AND t.total_over NOT LIKE '%:%'", kept)];
+  for (const g of gt) {
+    parts.push(part(`t.total_over = ${lit(`${g.by}:${g.table}`)}`, (k) => (k === g.by
+      ? `EXISTS (SELECT 1 FROM ${ident(g.table)} m WHERE CAST(m."group" AS VARCHAR) = CAST(t.${ident(k)} AS VARCHAR) AND CAST(m.member AS VARCHAR) = CAST(s.${ident(k)} AS VARCHAR))`
+      : kept(k))));
+  }
+  const agg = parts.join(" UNION ALL ");
   const keysMap = `map_from_entries([${o.keys.map((k) => `{'key': ${lit(k)}, 'value': coalesce(CAST(${ident(k)} AS VARCHAR), '(all)')}`).join(", ")}, {'key': 'variable', 'value': variable || coalesce(' ' || material, '')}])`;
   await ctx.audits.check({
     step: o.id, check: "uncertainty-totals", severity: "error",
@@ -404,11 +448,11 @@ async function totalsAudit(ctx: StepContext, o: O, table: string): Promise<void>
 }
 
 async function sensitivity(ctx: StepContext, o: O, inp: Inputs, groups: Group[], A: number, rowOf: RowOf, lt: { rows: ParamRow[] }, curveTables: CurveTable,
-  content: { rows: ParamRow[]; keyCols: string[] } | null, materials: string[], curveLength: number, cellsT: string): Promise<void> {
+  content: { rows: ParamRow[]; keyCols: string[] } | null, materials: string[], curveLength: number, cellsT: string, gt: GroupTotal[]): Promise<void> {
   const u = o.uncertainty!;
   const s = ctx.session;
   const { n, T, y0 } = inp;
-  const built = buildJob(o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, true);
+  const built = buildJob(o, inp, groups, A, rowOf, lt, curveTables, content, materials, curveLength, true, gt);
   const k = built.assumptions.length;
   ctx.progress.info(`step ${o.id}: sensitivity, ${built.job.runs} runs (N = ${u.sensitivity!.base}, k = ${k})`);
   const mc = await run(ctx, o, built.job, "sensitivity");
