@@ -199,32 +199,34 @@ export function summarizeDrawMajorSorted(values: Float64Array, draws: number, ce
   let p = plans.get(pk);
   if (!p) plans.set(pk, (p = plan(R, probabilities)));
   // One pass over the draws in the given order (by default the last cell's; ties by draw
-  // index): the sums, and whether each cell's values are non-decreasing in that order.
+  // index): whether each cell's values are non-decreasing in that order, and the sums of the
+  // deviations from the cell's middle draw in that order (shifted data: the variance from
+  // Σd and Σd² around a value inside the sample, as the corrected two-pass formula does around
+  // the mean; Chan, Golub & LeVeque 1983).
   const ok = new Uint8Array(C).fill(1);
-  const sum = new Float64Array(C);
-  for (let t = 0; t < C; t++) sum[t] = values[order[0]! * C + t]!;
+  const mid = order[R >> 1]! * C;
+  const x0 = values.slice(mid, mid + C); // the middle draw: a shift near the mean
+  const dev = new Float64Array(C);
+  const dev2 = new Float64Array(C);
+  const a0 = order[0]! * C;
+  for (let t = 0; t < C; t++) {
+    const e = values[a0 + t]! - x0[t]!;
+    dev[t] = e;
+    dev2[t] = e * e;
+  }
   for (let i = 1; i < R; i++) {
     const a = order[i]! * C;
     const b = order[i - 1]! * C;
     for (let t = 0; t < C; t++) {
       const x = values[a + t]!;
-      sum[t]! += x;
+      const e = x - x0[t]!;
+      dev[t]! += e;
+      dev2[t]! += e * e;
       ok[t]! &= x >= values[b + t]! ? 1 : 0;
     }
   }
-  for (let t = 0; t < C; t++) if (Number.isNaN(sum[t]!)) ok[t] = 0;
-  const m = new Float64Array(C);
-  for (let t = 0; t < C; t++) m[t] = sum[t]! / R;
-  const dev = new Float64Array(C);
-  const dev2 = new Float64Array(C);
-  for (let d = 0; d < R; d++) {
-    const a = d * C;
-    for (let t = 0; t < C; t++) {
-      const e = values[a + t]! - m[t]!;
-      dev[t]! += e;
-      dev2[t]! += e * e;
-    }
-  }
+  for (let t = 0; t < C; t++) if (Number.isNaN(dev[t]!) || Number.isNaN(x0[t]!)) ok[t] = 0;
+  const m = x0;
   let direct = 0;
   const col = new Float64Array(R);
   for (let t = 0; t < C; t++) {
