@@ -87,7 +87,7 @@ async function main(): Promise<void> {
     `by-cohort    ${b.by_cohort_series} series × ${b.by_cohort_years} years → ${b.by_cohort_rows} rows   ${fmt(Number(b.by_cohort_s))} s   ${fmt(Number(b.by_cohort_rows_per_s))} rows/s   ${gb(Number(b.peak_rss_bytes))}`,
   ];
   const mc = results.find((r) => r.stage === "mc");
-  if (mc) lines.push(`monte carlo  ${mc.mc_draws} draws × ${mc.mc_series} series × ${mc.mc_years} years   ${fmt(Number(mc.mc_s))} s   ${fmt(Number(mc.mc_cells_per_s))} cells/s (${mc.mc_threads} threads)   ${gb(Number(mc.peak_rss_bytes))}`);
+  if (mc) lines.push(`monte carlo  ${mc.mc_draws} draws × ${mc.mc_series} series × ${mc.mc_years} years   ${fmt(Number(mc.mc_s))} s   ${fmt(Number(mc.mc_cells_per_s))} cells/s (${mc.mc_threads} threads)   ${gb(Number(mc.peak_rss_bytes))}${mc.numpy_mc_s !== undefined ? `; numpy + OpenBLAS ${fmt(Number(mc.numpy_mc_s))} s (cairn ${Number(mc.mc_speed_ratio_to_numpy).toFixed(2)}× as fast)` : ""}`);
   const rf = results.find((r) => r.stage === "refresh");
   if (rf) {
     lines.push(`refresh      ${rf.refresh_rows} trade rows: newest year's trade changed ${fmt(Number(rf.refresh_trade_reuse_s))} s with re-use (${rf.refresh_trade_reused} steps re-used) vs ${fmt(Number(rf.refresh_trade_full_s))} s in full; a lifetime changed ${fmt(Number(rf.refresh_lifetime_reuse_s))} s with re-use (${rf.refresh_lifetime_reused} steps) vs ${fmt(Number(rf.refresh_lifetime_full_s))} s`);
@@ -106,7 +106,8 @@ async function main(): Promise<void> {
     by_cohort_rows: b.by_cohort_rows, by_cohort_peak_rss_bytes: b.peak_rss_bytes,
     peak_rss_bytes: Math.max(...results.map((r) => Number(r.peak_rss_bytes))),
     table_peak_rss_bytes: t.peak_rss_bytes, table_stage_peak_rss_bytes: t.table_stage_peak_rss_bytes, audit_errors: t.audit_errors,
-    ...(mc ? { mc_draws: mc.mc_draws, mc_series: mc.mc_series, mc_years: mc.mc_years, mc_s: mc.mc_s, mc_cells_per_s: mc.mc_cells_per_s, mc_peak_rss_bytes: mc.peak_rss_bytes } : {}),
+    ...(mc ? { mc_draws: mc.mc_draws, mc_series: mc.mc_series, mc_years: mc.mc_years, mc_s: mc.mc_s, mc_cells_per_s: mc.mc_cells_per_s, mc_peak_rss_bytes: mc.peak_rss_bytes,
+      ...(mc.numpy_mc_s !== undefined ? { numpy_mc_s: mc.numpy_mc_s, mc_speed_ratio_to_numpy: mc.mc_speed_ratio_to_numpy } : {}) } : {}),
     ...(rf ? { refresh_trade_reuse_s: rf.refresh_trade_reuse_s, refresh_trade_full_s: rf.refresh_trade_full_s, refresh_lifetime_reuse_s: rf.refresh_lifetime_reuse_s, refresh_lifetime_full_s: rf.refresh_lifetime_full_s } : {}),
     stages: results, scaling,
   };

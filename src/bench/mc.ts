@@ -8,6 +8,9 @@
  * A check that can fail: the total over all series is summed per draw; its mean must equal the
  * sum of the series' means (linearity of expectation) to rounding.
  */
+import { spawnSync } from "node:child_process";
+import path from "node:path";
+import { fileURLToPath } from "node:url";
 import { mulberry32 } from "../data/prng.js";
 import { runMonteCarlo } from "../uncertainty/mc.js";
 import type { McJob } from "../uncertainty/mc-types.js";
@@ -69,5 +72,13 @@ export async function mcStage(draws: number, series: number, years: number, grou
     worst = Math.max(worst, Math.abs(tot - sum) / Math.max(1, Math.abs(sum)));
   }
   if (!(worst < 1e-9)) throw new Error(`Monte Carlo check failed: mean of the per-draw totals differs from the sum of the series' means by ${worst.toExponential(2)} (relative)`);
-  return { stage: "mc", mc_draws: draws, mc_series: series, mc_years: years, mc_groups: groups, mc_s: s, mc_cells_per_s: cells / s, mc_threads: r.threads, mc_chunks: r.chunks, mc_total_mean_rel_error: worst };
+  // The same workload written independently with numpy, scipy and OpenBLAS (scripts/numpy-mc.py), when python3 has them.
+  const script = path.resolve(path.dirname(fileURLToPath(import.meta.url)), "..", "..", "scripts", "numpy-mc.py");
+  const py = spawnSync("python3", [script, String(draws), String(series), String(years), String(groups), String(r.threads)], { encoding: "utf8", timeout: 30 * 60 * 1000 });
+  let numpy: Record<string, number> = {};
+  if (py.status === 0) {
+    const j = JSON.parse(py.stdout.trim().split("\n").pop()!) as { numpy_mc_s: number; numpy_mc_cells_per_s: number };
+    numpy = { numpy_mc_s: j.numpy_mc_s, numpy_mc_cells_per_s: j.numpy_mc_cells_per_s, mc_speed_ratio_to_numpy: j.numpy_mc_s / s };
+  } else process.stderr.write(`  numpy Monte Carlo reference not run (${py.error?.message ?? py.stderr.trim().split("\n").pop()})\n`);
+  return { ...numpy, stage: "mc", mc_draws: draws, mc_series: series, mc_years: years, mc_groups: groups, mc_s: s, mc_cells_per_s: cells / s, mc_threads: r.threads, mc_chunks: r.chunks, mc_total_mean_rel_error: worst };
 }
