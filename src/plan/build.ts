@@ -77,7 +77,7 @@ export async function buildPlan(lp: LoadedPipeline): Promise<Plan> {
     for (const [i, step] of p.steps.entries()) {
       const kind = stepKind(step.kind)!;
       const at = (option?: string) => lp.locate(["steps", i, ...(option ? [option] : [])]);
-      const reads = kind.reads(step as never);
+      const reads = kind.reads(step as never, p);
       for (const r of reads) {
         if (schemas.has(r.table)) continue;
         const later = p.steps.slice(i + 1).find((x) => x.id === r.table);

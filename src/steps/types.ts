@@ -111,8 +111,8 @@ export interface StepKind<O extends z.ZodObject = z.ZodObject> {
   summary: string;
   /** Options besides id, kind and publish. */
   options: O;
-  /** Tables (sources or earlier step outputs) this step reads. */
-  reads(step: z.output<O> & StepBase): ReadDecl[];
+  /** Tables (sources or earlier step outputs) this step reads; the pipeline for what depends on other steps. */
+  reads(step: z.output<O> & StepBase, pipeline: Pipeline): ReadDecl[];
   /** The tables it will produce, from its options and its inputs' schemas, without running. */
   outputs(ctx: PlanContext, step: z.output<O> & StepBase): OutputDecl[] | Promise<OutputDecl[]>;
   /** Checks of the small tables that configure the step (loaded whole), run by `check` and before any step runs. */

@@ -23,11 +23,21 @@ import { byCohortAudit, lifetimeAudits, materialAudits, modelAudits } from "./au
 import { hasColumns } from "../columns.js";
 import { declareUncertainty, runUncertainty } from "./uncertainty.js";
 
+/** The groups tables of the aggregate steps that sum this model's main table. */
+function groupTables(o: O, pipeline: { steps: readonly { kind: string }[] }): string[] {
+  const out = new Set<string>();
+  for (const x of pipeline.steps) {
+    const a = x as unknown as { kind: string; input?: string; groups?: string };
+    if (a.kind === "aggregate" && a.input === o.id && a.groups) out.add(a.groups);
+  }
+  return [...out];
+}
+
 export const cohortModelStep = defineStep({
   kind: "cohort-model",
   summary: "inflow-driven or stock-driven cohort (dynamic stock) model per series, with lifetimes by key and cohort, a stock in place, composition by cohort",
   options: Options,
-  reads: (o) => [
+  reads: (o, pipeline) => [
     { table: o.input, option: "input" },
     { table: o.lifetimes, option: "lifetimes", config: true },
     ...(o.curves ? [{ table: o.curves, option: "curves", config: true }] : []),
@@ -35,6 +45,8 @@ export const cohortModelStep = defineStep({
     ...(o.content ? [{ table: o.content, option: "content", config: true }] : []),
     // The end state of the model it continues (kept in memory; its main table marks the dependency).
     ...(o.continues ? [{ table: o.continues.step, option: "continues" }] : []),
+    // With uncertainty, the draws are summed over the groups of the aggregate steps that read this model.
+    ...(o.uncertainty ? groupTables(o, pipeline).map((table) => ({ table, option: "uncertainty", config: true })) : []),
   ],
   outputs(ctx, step) {
     const o = step as O;
