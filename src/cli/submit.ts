@@ -26,17 +26,22 @@ export function registerSubmit(program: Command): void {
     .option("--account <name>", "Slurm account")
     .option("--time <limit>", "time limit of each job, e.g. 2:00:00")
     .option("--mem <size>", "memory per job, e.g. 8G (Slurm --mem)")
-    .option("--cpus <n>", "CPUs per job (DuckDB and cohort threads follow it)", "1")
+    .option("--cpus <n>", "CPUs per shard job (DuckDB and cohort threads follow it)", "1")
+    .option("--merge-cpus <n>", "CPUs of the merge job (default: --cpus)")
     .option("--setup <line>", "a shell line run before cairn in each job, e.g. 'module load nodejs/20' (repeatable)", collect, [] as string[])
     .option("--dry-run", "print the batch scripts; write and submit nothing", false)
     .option("--json", "print what was submitted as JSON", false)
     .action(async (file: string, o: { slurm: boolean; shards: string; out?: string; release?: string; catalog?: string; replace: boolean; shardBy: string; set: string[];
-      partition?: string; account?: string; time?: string; mem?: string; cpus: string; setup: string[]; dryRun: boolean; json: boolean }) => {
+      partition?: string; account?: string; time?: string; mem?: string; cpus: string; mergeCpus?: string; setup: string[]; dryRun: boolean; json: boolean }) => {
       try {
         const n = Number(o.shards);
         if (!/^\d+$/.test(o.shards.trim()) || n < 1 || n > 10000) throw new PipelineError(`--shards ${JSON.stringify(o.shards)}: expected a whole number of shards from 1 to 10000`);
-        const cpus = Number(o.cpus);
-        if (!/^\d+$/.test(o.cpus.trim()) || cpus < 1 || cpus > 1024) throw new PipelineError(`--cpus ${JSON.stringify(o.cpus)}: expected a whole number from 1 to 1024`);
+        const count = (opt: string, v: string) => {
+          if (!/^\d+$/.test(v.trim()) || Number(v) < 1 || Number(v) > 1024) throw new PipelineError(`${opt} ${JSON.stringify(v)}: expected a whole number of CPUs from 1 to 1024`);
+          return Number(v);
+        };
+        const cpus = count("--cpus", o.cpus);
+        const mergeCpus = o.mergeCpus === undefined ? cpus : count("--merge-cpus", o.mergeCpus);
         if (o.out && o.release) throw new PipelineError("--out and --release: the merged run goes to one of them");
         if (!o.out && !o.release) throw new PipelineError("give --out DIR (the merged run directory) or --release ID (into a catalog)");
         // The whole pipeline is checked, and its shard plan made, before anything is submitted.
@@ -47,7 +52,7 @@ export function registerSubmit(program: Command): void {
         const out = path.resolve(catalog ? path.join(catalog.dir, o.release!) : o.out!);
         if (!o.release) checkTarget(out, { replace: o.replace, protect: protectedPaths(lp) });
         const opts = {
-          file: path.resolve(file), out, shards: n, by: o.shardBy, set: o.set, cpus, setup: o.setup, replace: o.replace, name: lp.pipeline.name, cwd: process.cwd(),
+          file: path.resolve(file), out, shards: n, by: o.shardBy, set: o.set, cpus, mergeCpus, setup: o.setup, replace: o.replace, name: lp.pipeline.name, cwd: process.cwd(),
           ...(o.partition ? { partition: checkName("--partition", o.partition) } : {}), ...(o.account ? { account: checkName("--account", o.account) } : {}),
           ...(o.time ? { time: checkTime(o.time) } : {}), ...(o.mem ? { mem: checkMem(o.mem) } : {}),
           ...(o.release ? { release: o.release, catalog: catalog!.dir } : {}),

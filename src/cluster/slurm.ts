@@ -34,6 +34,8 @@ export interface SubmitOptions {
   time?: string;
   mem?: string;
   cpus: number;
+  /** CPUs of the merge job (default: cpus). */
+  mergeCpus?: number;
   account?: string;
   setup: string[];
   replace: boolean;
@@ -84,13 +86,13 @@ export function checkName(opt: string, v: string): string {
   return v;
 }
 
-function header(o: SubmitOptions, job: string, log: string, extra: string[]): string[] {
+function header(o: SubmitOptions, job: string, log: string, extra: string[], cpus = o.cpus): string[] {
   return [
     "#!/bin/bash",
     `#SBATCH --job-name=${sh(`cairn-${o.name}-${job}`)}`,
     ...extra,
     `#SBATCH --output=${sh(log)}`,
-    `#SBATCH --cpus-per-task=${o.cpus}`,
+    `#SBATCH --cpus-per-task=${cpus}`,
     ...(o.partition ? [`#SBATCH --partition=${o.partition}`] : []),
     ...(o.account ? [`#SBATCH --account=${o.account}`] : []),
     ...(o.time ? [`#SBATCH --time=${o.time}`] : []),
@@ -120,7 +122,7 @@ export function mergeScript(o: SubmitOptions, work: string): string {
   const dirs = [...Array(o.shards).keys()].map((k) => sh(shardDir(work, k))).join(" ");
   const target = o.release ? `--release ${sh(o.release)}${o.catalog ? ` --catalog ${sh(o.catalog)}` : ""}` : `--out ${sh(o.out)}`;
   return [
-    ...header(o, "merge", path.join(work, "logs", "merge.log"), []),
+    ...header(o, "merge", path.join(work, "logs", "merge.log"), [], o.mergeCpus ?? o.cpus),
     `exec ${sh(process.execPath)} ${sh(cli())} merge ${dirs} \\`,
     `  ${target}${o.replace ? " --replace" : ""} --quiet --threads "\${SLURM_CPUS_PER_TASK:-1}"`,
     "",
