@@ -6,6 +6,7 @@ import { buildPlan } from "../plan/build.js";
 import { planShards } from "../plan/shard.js";
 import { catalogOf, protectedPaths } from "../run/runner.js";
 import { checkTarget } from "../publish/rundir.js";
+import { Catalog } from "../publish/catalog.js";
 import { checkMem, checkName, checkTime, submit } from "../cluster/slurm.js";
 import { collect, fail, parsePath } from "./common.js";
 
@@ -44,6 +45,7 @@ export function registerSubmit(program: Command): void {
         const mergeCpus = o.mergeCpus === undefined ? cpus : count("--merge-cpus", o.mergeCpus);
         if (o.out && o.release) throw new PipelineError("--out and --release: the merged run goes to one of them");
         if (!o.out && !o.release) throw new PipelineError("give --out DIR (the merged run directory) or --release ID (into a catalog)");
+        if (o.release) Catalog.checkId(o.release);
         // The whole pipeline is checked, and its shard plan made, before anything is submitted.
         const lp = loadPipeline(file, parseSet(o.set));
         const plan = await buildPlan(lp);
