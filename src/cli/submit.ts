@@ -8,7 +8,7 @@ import { catalogOf, protectedPaths } from "../run/runner.js";
 import { checkTarget } from "../publish/rundir.js";
 import { Catalog } from "../publish/catalog.js";
 import { checkMem, checkName, checkTime, submit } from "../cluster/slurm.js";
-import { collect, fail, parsePath } from "./common.js";
+import { collect, fail, parsePath, parseSize } from "./common.js";
 
 export function registerSubmit(program: Command): void {
   program
@@ -29,11 +29,12 @@ export function registerSubmit(program: Command): void {
     .option("--mem <size>", "memory per job, e.g. 8G (Slurm --mem)")
     .option("--cpus <n>", "CPUs per shard job (DuckDB and cohort threads follow it)", "1")
     .option("--merge-cpus <n>", "CPUs of the merge job (default: --cpus)")
+    .option("--memory-limit <size>", "DuckDB memory limit in each job (below --mem), e.g. 6GB; beyond it DuckDB spills", parseSize)
     .option("--setup <line>", "a shell line run before cairn in each job, e.g. 'module load nodejs/20' (repeatable)", collect, [] as string[])
     .option("--dry-run", "print the batch scripts; write and submit nothing", false)
     .option("--json", "print what was submitted as JSON", false)
     .action(async (file: string, o: { slurm: boolean; shards: string; out?: string; release?: string; catalog?: string; replace: boolean; shardBy: string; set: string[];
-      partition?: string; account?: string; time?: string; mem?: string; cpus: string; mergeCpus?: string; setup: string[]; dryRun: boolean; json: boolean }) => {
+      partition?: string; account?: string; time?: string; mem?: string; cpus: string; mergeCpus?: string; memoryLimit?: string; setup: string[]; dryRun: boolean; json: boolean }) => {
       try {
         const n = Number(o.shards);
         if (!/^\d+$/.test(o.shards.trim()) || n < 1 || n > 10000) throw new PipelineError(`--shards ${JSON.stringify(o.shards)}: expected a whole number of shards from 1 to 10000`);
@@ -54,7 +55,7 @@ export function registerSubmit(program: Command): void {
         const out = path.resolve(catalog ? path.join(catalog.dir, o.release!) : o.out!);
         if (!o.release) checkTarget(out, { replace: o.replace, protect: protectedPaths(lp) });
         const opts = {
-          file: path.resolve(file), out, shards: n, by: o.shardBy, set: o.set, cpus, mergeCpus, setup: o.setup, replace: o.replace, name: lp.pipeline.name, cwd: process.cwd(),
+          file: path.resolve(file), out, shards: n, by: o.shardBy, set: o.set, cpus, mergeCpus, memoryLimit: o.memoryLimit, setup: o.setup, replace: o.replace, name: lp.pipeline.name, cwd: process.cwd(),
           ...(o.partition ? { partition: checkName("--partition", o.partition) } : {}), ...(o.account ? { account: checkName("--account", o.account) } : {}),
           ...(o.time ? { time: checkTime(o.time) } : {}), ...(o.mem ? { mem: checkMem(o.mem) } : {}),
           ...(o.release ? { release: o.release, catalog: catalog!.dir } : {}),

@@ -38,6 +38,8 @@ export interface SubmitOptions {
   mergeCpus?: number;
   account?: string;
   setup: string[];
+  /** DuckDB's memory limit in each job (spills beyond it). */
+  memoryLimit?: string;
   replace: boolean;
   release?: string;
   catalog?: string;
@@ -108,7 +110,7 @@ function header(o: SubmitOptions, job: string, log: string, extra: string[], cpu
 
 /** The job array's script: task K is shard K. */
 export function shardScript(o: SubmitOptions, work: string): string {
-  const sets = o.set.flatMap((v) => ["--set", sh(v)]).join(" ");
+  const sets = [...o.set.flatMap((v) => ["--set", sh(v)]), ...(o.memoryLimit ? ["--memory-limit", sh(o.memoryLimit)] : [])].join(" ");
   return [
     ...header(o, "shards", path.join(work, "logs", "shard-%a.log"), [`#SBATCH --array=0-${o.shards - 1}`]),
     `exec ${sh(process.execPath)} ${sh(cli())} run ${sh(o.file)} --shard "\${SLURM_ARRAY_TASK_ID}/${o.shards}" --shard-by ${sh(o.by)} \\`,
@@ -124,7 +126,7 @@ export function mergeScript(o: SubmitOptions, work: string): string {
   return [
     ...header(o, "merge", path.join(work, "logs", "merge.log"), [], o.mergeCpus ?? o.cpus),
     `exec ${sh(process.execPath)} ${sh(cli())} merge ${dirs} \\`,
-    `  ${target}${o.replace ? " --replace" : ""} --quiet --threads "\${SLURM_CPUS_PER_TASK:-1}"`,
+    `  ${target}${o.replace ? " --replace" : ""}${o.memoryLimit ? ` --memory-limit ${sh(o.memoryLimit)}` : ""} --quiet --threads "\${SLURM_CPUS_PER_TASK:-1}"`,
     "",
   ].join("\n");
 }
