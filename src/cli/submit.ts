@@ -67,7 +67,10 @@ export function registerSubmit(program: Command): void {
           return;
         }
         if (!submitted) {
-          process.stdout.write(`# shards.sbatch\n${scripts.shards}\n# merge.sbatch\n${scripts.merge}`);
+          const work = `${out}.shards`;
+          process.stdout.write(`# would write ${work}/shards.sbatch and ${work}/merge.sbatch and run:\n#   sbatch --parsable ${work}/shards.sbatch\n` +
+            `#   sbatch --parsable --dependency=afterok:<array job id> --kill-on-invalid-dep=yes ${work}/merge.sbatch\n\n` +
+            `# shards.sbatch\n${scripts.shards}\n# merge.sbatch\n${scripts.merge}`);
           return;
         }
         process.stdout.write(`submitted ${n} shard(s) of ${path.resolve(file)} by ${o.shardBy} as job array ${submitted.array_job} (tasks 0-${n - 1}), and the merge as job ${submitted.merge_job} (runs when every shard succeeded; cancelled if one fails)
