@@ -1,6 +1,7 @@
 /**
  * vitest global setup: a one-node Slurm cluster on localhost (scripts/slurm-local.sh) for the
- * cluster tests, started once before and stopped once after the whole run. It starts only when
+ * cluster tests, started once before and stopped once after the whole run (a cluster that was
+ * already up is used and left running). It starts only when
  * the run includes tests/cluster (every run without file filters does), as root, with Slurm's
  * sbatch installed; otherwise the Slurm tests are skipped with the reason.
  */
@@ -42,6 +43,8 @@ export default function setup(project: TestProject): (() => void) | undefined {
     return undefined;
   }
   project.provide("slurmConf", conf);
+  // A cluster someone else started (another test run, a developer) is theirs to stop.
+  if (/already up/.test(up.stderr ?? "")) return undefined;
   return () => {
     spawnSync("bash", [SCRIPT, "down"], { encoding: "utf8", timeout: 120_000 });
   };
