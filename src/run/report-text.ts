@@ -5,6 +5,8 @@ export function reportText(r: RunReport): string {
   const lines: string[] = [];
   lines.push(r.status === "ok" ? `run complete: ${r.run_dir}${r.release ? ` (release ${r.release})` : ""}` : `run FAILED (exit ${r.exit_code}); kept for inspection: ${r.run_dir}`);
   if (r.error) lines.push(r.error);
+  if (r.shard) lines.push(`  shard ${r.shard.index} of ${r.shard.count} (0-based), by ${r.shard.by}: ${r.shard.keys} of ${r.shard.of} values; merge every shard with cairn merge`);
+  if (r.merged_from) lines.push(`  merged from ${r.merged_from.length} shards: ${r.merged_from.join(", ")}`);
   for (const s of r.sources) lines.push(`  source ${s.name}: ${s.rows_loaded} rows loaded, ${s.rows_rejected} rejected, ${s.rows_filtered} filtered out${s.reused ? " (unchanged, not read again)" : ""}`);
   if (r.reused.length) lines.push(`  re-used unchanged from the previous run: ${r.reused.join(", ")}`);
   for (const o of r.outputs) lines.push(`  wrote ${o.file} (${o.rows} rows)`);
