@@ -2,8 +2,8 @@
  * The audits of a step taken over from the shards, merged into the rows a single run writes.
  * Each shard recorded how each check was made (ShardAuditLog, run/shard.ts):
  * - a check whose items name the shard key: the shards' item rows are concatenated; the summary
- *   adds up the items checked and failed and takes the worst residuals' maximum, and its
- *   message is written as the audit log writes it;
+ *   adds up the items checked and failed and takes the largest of the shards' exact worst
+ *   residuals, written (and its message) as the audit log writes them;
  * - a check whose items do not name the key (one per lifetimes row, say): every item was kept
  *   in the shard (passing ones too); each is taken once (shards that share it must agree on it
  *   exactly), and the summary is made from them;
@@ -28,6 +28,8 @@ export const NOTE_MESSAGES: Record<string, (a: { step: string; items: number; fa
 };
 
 const p3 = (x: unknown) => Number(x).toPrecision(3);
+/** A number as the audit log writes it into SQL (a literal), so the stored value is the same. */
+const num = (x: unknown) => (x === null || x === undefined ? "NULL" : lit(Number(x)));
 
 /** The summary message of AuditLog.check (a check over SQL items). */
 function checkMessage(n: number, failed: number, worst: unknown, worstFail: unknown, unit: string | null): string {
@@ -46,11 +48,15 @@ export async function mergeStepAudits(run: Run, node: StepNode): Promise<void> {
   await s.run(`CREATE OR REPLACE TEMP TABLE ${M} AS ${shards.map((sh) => `SELECT ${sh.index} AS shard, * FROM read_parquet(${lit(path.join(sh.dir, "audit.parquet"))}) WHERE step = ${lit(node.id)}`).join(" UNION ALL ")}`);
   await s.run(`CREATE OR REPLACE TEMP TABLE ${I} AS ${shards.map((sh) => `SELECT ${sh.index} AS shard, * FROM read_parquet(${lit(path.join(sh.dir, `${ITEMS_FILE}.parquet`))}) WHERE step = ${lit(node.id)}`).join(" UNION ALL ")}`);
   const checks = new Map<string, CheckMeta>();
+  const notes = new Map<string, CheckMeta[]>();
+  // The largest exact worst residual over the shards (null when none has one).
+  const most = (a: number | null | undefined, b: number | null | undefined) => (a == null ? b ?? null : b == null ? a : Math.max(a, b));
   for (const sh of shards) {
     for (const m of sh.manifest.shard.audit_checks.filter((x) => x.step === node.id)) {
       const was = checks.get(m.check);
       if (was && was.method !== m.method) throw new ClusterError(`audit ${node.id} ${m.check}: made differently in the shards (${was.method}, ${m.method}); the shards do not come from one plan`);
-      checks.set(m.check, was ? { ...was, global: was.global || m.global } : m);
+      checks.set(m.check, was ? { ...was, global: was.global || m.global, worst: most(was.worst, m.worst), worst_fail: most(was.worst_fail, m.worst_fail) } : { ...m });
+      if (m.method === "note") notes.set(m.check, [...(notes.get(m.check) ?? []), m]);
     }
   }
   const where = (c: string) => `"check" = ${lit(c)}`;
@@ -65,10 +71,14 @@ export async function mergeStepAudits(run: Run, node: StepNode): Promise<void> {
       const message = NOTE_MESSAGES[c.check]?.({ step: node.id, items, failed, messages })
         ?? (messages.every((m) => m === messages[0]) && !/\d/.test(messages[0]!) ? messages[0]!
           : `${items} items over ${rows.length} shards, ${failed} failed: ${rows.map((x) => `shard ${x.shard}: ${x.message}`).join("; ")}`);
+      // Observed and expected added up from the shards' exact values, written as the audit log writes them.
+      const metas = notes.get(c.check) ?? [];
+      const sum = (k: "observed" | "expected") => (metas.length && metas.every((m) => typeof m[k] === "number") ? metas.reduce((a, m) => a + (m[k] as number), 0) : null);
+      const o = sum("observed");
+      const e = sum("expected");
       await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, ${lit(node.id)}, ${lit(c.check)}, any_value(severity),
           CASE WHEN sum(failed) > 0 OR bool_or(status = 'fail') THEN 'fail' ELSE 'pass' END, 'summary', MAP {}::MAP(VARCHAR, VARCHAR), NULL,
-          CASE WHEN count(observed) = count(*) THEN sum(observed) END, CASE WHEN count(expected) = count(*) THEN sum(expected) END,
-          CASE WHEN count(observed) = count(*) AND count(expected) = count(*) THEN sum(observed) - sum(expected) END, NULL, any_value(unit),
+          ${lit(o)}, ${lit(e)}, ${o !== null && e !== null ? lit(o - e) : "NULL"}, NULL, any_value(unit),
           ${items}, ${failed}, NULL, NULL, ${lit(message)}
         FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
     } else if (c.global) {
@@ -87,21 +97,23 @@ export async function mergeStepAudits(run: Run, node: StepNode): Promise<void> {
       const n = Number(r.n);
       const f = Number(r.f);
       await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, ${lit(node.id)}, ${lit(c.check)}, any_value(severity), ${lit(f > 0 ? "fail" : "pass")}, 'summary', MAP {}::MAP(VARCHAR, VARCHAR),
-          NULL, NULL, NULL, NULL, NULL, ${lit(unit as string | null)}, ${n}, ${f}, max(abs(residual)), max(abs(residual)) FILTER (WHERE fail),
+          NULL, NULL, NULL, NULL, NULL, ${lit(unit as string | null)}, ${n}, ${f}, ${num(r.w)}, ${num(r.wf)},
           ${lit(checkMessage(n, f, r.w, r.wf, unit as string | null))} FROM ${D}`);
       if (f > 0 && r.sev === "error") run.audits.failedErrors.push({ step: node.id, check: c.check, failed: f, example: "see audit.parquet" });
       await s.run(`DROP TABLE ${D}`);
     } else {
       await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, step, "check", severity, status, row_kind, keys, year, observed, expected, residual, tolerance, unit, items, failed,
           worst_residual, worst_failing_residual, message FROM ${M} WHERE ${where(c.check)} AND row_kind = 'item'`);
-      const r = await s.one(`SELECT CAST(sum(items) AS BIGINT) AS n, CAST(sum(failed) AS BIGINT) AS f, max(worst_residual) AS w, max(worst_failing_residual) AS wf,
+      const r = await s.one(`SELECT CAST(sum(items) AS BIGINT) AS n, CAST(sum(failed) AS BIGINT) AS f,
           any_value(unit) AS unit, count(DISTINCT severity) AS sevs, any_value(severity) AS sev FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
       if (Number(r.sevs) > 1) throw new ClusterError(`audit ${node.id} ${c.check}: the shards give it different severities; they do not come from one plan`);
       const n = Number(r.n);
       const f = Number(r.f);
-      const message = c.method === "check" ? checkMessage(n, f, r.w, r.wf, r.unit as string | null) : itemsMessage(n, f);
+      const w = c.worst ?? null;
+      const wf = c.worst_fail ?? null;
+      const message = c.method === "check" ? checkMessage(n, f, w, wf, r.unit as string | null) : itemsMessage(n, f);
       await s.run(`INSERT INTO ${AUDIT_TABLE} SELECT ${idx}, ${lit(node.id)}, ${lit(c.check)}, any_value(severity), ${lit(f > 0 ? "fail" : "pass")}, 'summary', MAP {}::MAP(VARCHAR, VARCHAR),
-          NULL, NULL, NULL, NULL, NULL, any_value(unit), ${n}, ${f}, max(worst_residual), max(worst_failing_residual), ${lit(message)}
+          NULL, NULL, NULL, NULL, NULL, any_value(unit), ${n}, ${f}, ${num(w)}, ${num(wf)}, ${lit(message)}
         FROM ${M} WHERE ${where(c.check)} AND row_kind = 'summary'`);
       if (f > 0 && r.sev === "error") run.audits.failedErrors.push({ step: node.id, check: c.check, failed: f, example: "see audit.parquet" });
     }

@@ -139,6 +139,15 @@ export interface CheckMeta {
   /** Its items do not name the shard key: every item was captured (passing ones too), for the merge to take each once. */
   global: boolean;
   fail_message?: string;
+  /**
+   * The summary's numbers exactly (the audit log writes them as SQL literals, which DuckDB reads
+   * back as decimals, a last bit off at times): the worst |residual| over all items and over the
+   * failing ones, a note's observed and expected value. The merge writes the largest the same way.
+   */
+  worst?: number | null;
+  worst_fail?: number | null;
+  observed?: number | null;
+  expected?: number | null;
 }
 
 /**
@@ -168,6 +177,7 @@ export class ShardAuditLog extends AuditLog {
   }
 
   private record(m: Omit<CheckMeta, "step_index">): void {
+    for (const k of ["worst", "worst_fail", "observed", "expected"] as const) if (m[k] !== undefined && m[k] !== null && !Number.isFinite(m[k])) m[k] = null;
     const at = this.meta.findIndex((x) => x.step === m.step && x.check === m.check);
     const row = { ...m, step_index: this.idx };
     if (at >= 0) this.meta[at] = { ...row, global: row.global || this.meta[at]!.global };
@@ -178,23 +188,29 @@ export class ShardAuditLog extends AuditLog {
     const noKey = `map_extract_value(keys, ${lit(this.by)}) IS NULL`;
     const first = await this.sess.all(`SELECT ${noKey} AS g FROM (${c.items}) LIMIT 1`);
     const global = first.length > 0 && Boolean(first[0]!.g);
+    const fail = c.failWhen ?? "abs(observed - expected) > tolerance";
     if (global) {
-      const fail = c.failWhen ?? "abs(observed - expected) > tolerance";
       await this.sess.run(`INSERT INTO ${ITEMS_TABLE} SELECT ${this.idx}, ${lit(c.step)}, ${lit(c.check)}, ${lit(c.severity)}, ${lit(c.unit ?? null)}, keys,
           CAST(year AS INTEGER), CAST(observed AS DOUBLE), CAST(expected AS DOUBLE), CAST(observed AS DOUBLE) - CAST(expected AS DOUBLE), CAST(tolerance AS DOUBLE),
           coalesce((${fail}), TRUE), CAST(message AS VARCHAR) FROM (${c.items})`);
     }
-    this.record({ step: c.step, check: c.check, method: "check", global, fail_message: c.failMessage });
+    const w = await this.sess.one(`SELECT max(abs(r)) AS w, max(abs(r)) FILTER (WHERE f) AS wf
+      FROM (SELECT CAST(observed AS DOUBLE) - CAST(expected AS DOUBLE) AS r, coalesce((${fail}), TRUE) AS f FROM (${c.items}))`);
+    const num = (x: unknown) => (x === null || x === undefined ? null : Number(x));
+    this.record({ step: c.step, check: c.check, method: "check", global, fail_message: c.failMessage, worst: num(w.w), worst_fail: num(w.wf) });
     return super.check(c);
   }
 
   override async fromItems(c: Parameters<AuditLog["fromItems"]>[0]): Promise<CheckResult> {
-    this.record({ step: c.step, check: c.check, method: "items", global: c.failing.some((f) => f.keys[this.by] === undefined) });
+    // As AuditLog.fromItems makes them.
+    const worstFail = c.failing.length ? Math.max(...c.failing.map((f) => Math.abs(f.observed - f.expected))) : null;
+    const worst = c.worst === null ? worstFail : Math.max(c.worst, worstFail ?? 0);
+    this.record({ step: c.step, check: c.check, method: "items", global: c.failing.some((f) => f.keys[this.by] === undefined), worst, worst_fail: worstFail });
     return super.fromItems(c);
   }
 
   override async note(...a: Parameters<AuditLog["note"]>): Promise<void> {
-    this.record({ step: a[0], check: a[1], method: "note", global: false });
+    this.record({ step: a[0], check: a[1], method: "note", global: false, observed: a[6]?.observed ?? null, expected: a[6]?.expected ?? null });
     return super.note(...a);
   }
 
