@@ -11,6 +11,7 @@ import { RunReader } from "./data.js";
 import { CSS, esc } from "./html.js";
 import { renderSvg } from "./render.js";
 import { checkAgainst, findRevisions } from "./revisions.js";
+import { uncertaintySection } from "./uncertainty.js";
 import { auditSection, glance, inputsSection, methodSection, outputsSection, revisionsSection, titleSection, type RunManifest } from "./sections.js";
 
 export interface ReportOptions {
@@ -82,10 +83,11 @@ export async function renderReport(runDir: string, opts: ReportOptions = {}): Pr
     const groups = m.status === "ok" ? await collectCharts(r) : [];
     const charts = await chartsSection(groups, progress, m.status === "ok" ? "This run publishes no apparent-consumption or cohort-model table to chart." : "No charts: the run failed, and a failed run publishes no tables.");
     const nCharts = groups.reduce((n, g) => n + g.items.filter((i) => "spec" in i).length, 0);
+    const ranges = m.status === "ok" ? await uncertaintySection(r, m) : "";
     progress(opts.against ? `computing revisions against ${opts.against}` : "reading revisions");
     const rev = m.status === "ok" ? await findRevisions(r, opts.against) : null;
     const title = `${m.pipeline.name}${m.release ? ` ${m.release.id}` : ""} — cairn report`;
-    const toc = [["inputs", "Inputs"], ["audit", "Audit"], ["charts", "Charts"], ["outputs", "Published tables"], ["revisions", "Revisions"], ["method", "Method and caution"]]
+    const toc = [["inputs", "Inputs"], ["audit", "Audit"], ["charts", "Charts"], ...(ranges ? [["uncertainty", "Uncertainty"]] : []), ["outputs", "Published tables"], ["revisions", "Revisions"], ["method", "Method and caution"]]
       .map(([id, label]) => `<a href="#${id}">${label}</a>`).join("");
     return `<!doctype html>
 <html lang="en">
@@ -104,6 +106,7 @@ ${glance(m, rev, nCharts)}
 ${inputs}
 ${audit}
 ${charts}
+${ranges}
 ${m.status === "ok" ? outputsSection(m) : ""}
 ${revisionsSection(rev, m)}
 ${methodSection(m)}

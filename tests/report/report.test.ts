@@ -110,6 +110,19 @@ describe("renderReport on the demo run", () => {
     }
   });
 
+  it("shows the Monte Carlo totals of the newest year and what drives them, as the uncertainty tables hold them", async () => {
+    expect(html).toContain('<section id="uncertainty">');
+    const rows = tableRows(html, "uncertainty");
+    const all = rows.find((r) => r[0]!.text === "all series" && r[1]!.text === "stock")!;
+    const want = await s.all(`SELECT central, q05, q95 FROM ${pq("stocks_uncertainty.parquet")} WHERE total_over = 'region,product' AND variable = 'stock' AND material IS NULL AND year = 2023`);
+    expect(Number(all[2]!.value)).toBe(Number(want[0]!.central));
+    expect(Number(all[3]!.value)).toBe(Number(want[0]!.q05));
+    expect(Number(all[7]!.value)).toBe(Number(want[0]!.q95));
+    const sens = tableRows(html, "sensitivity");
+    const fo = await s.all(`SELECT assumption, first_order FROM ${pq("stocks_sensitivity.parquet")} WHERE total_over = 'region,product' AND variable = 'stock' AND year = 2023`);
+    for (const f of fo) expect(Number(sens.find((r) => r[0]!.text === f.assumption)![1]!.value)).toBe(Number(f.first_order));
+  });
+
   it("charts sums of the published tables; the scenario told apart from the history", async () => {
     const r = await RunReader.open(run);
     const specs = (await collectCharts(r)).flatMap((g) => g.items).flatMap((i) => ("spec" in i ? [i.spec] : []));
