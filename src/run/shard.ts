@@ -66,6 +66,12 @@ export async function cutSources(run: Run, sp: ShardPlan, shard: ShardSpec): Pro
   }
   const all = parts.length ? (await s.all(`SELECT DISTINCT v FROM (${parts.join(" UNION ALL ")}) ORDER BY v`)).map((r) => String(r.v)) : [];
   const own = blockOf(all, shard.index, shard.count);
+  // A shard that holds every value (one shard) reads its sources as they are.
+  if (own.length === all.length) {
+    await s.run(`CREATE OR REPLACE TABLE ${OWN_TABLE} AS SELECT unnest([${own.map(lit).join(", ")}]::VARCHAR[]) AS v`);
+    run.progress.info(`shard ${shard.index} of ${shard.count}: all ${all.length} ${sp.by} values; sources not cut`);
+    return { all, own };
+  }
   await s.run(`CREATE OR REPLACE TABLE ${OWN_TABLE} (v VARCHAR)`);
   for (let i = 0; i < own.length; i += 1000) await s.run(`INSERT INTO ${OWN_TABLE} VALUES ${own.slice(i, i + 1000).map((v) => `(${lit(v)})`).join(", ")}`);
   // The oldest age of a stock in place, over the whole table (before the cut): see alignHorizon.
@@ -74,11 +80,19 @@ export async function cutSources(run: Run, sp: ShardPlan, shard: ShardSpec): Pro
   for (const x of cut) {
     const m = x.mode!;
     const cond = m.kind === "keyed" ? owned(ident(m.column), shard.index) : m.kind === "trade" ? `(${owned(ident(m.reporter), shard.index)} OR ${owned(ident(m.partner), shard.index)})` : "TRUE";
+    // The checked source stays as it is, renamed; the source's name becomes a view of the shard's rows
+    // (a table, where a row is added to it below).
+    const full = `__cairn_whole_${x.name}`;
+    await s.run(`ALTER VIEW ${ident(x.name)} RENAME TO ${ident(full)}`);
     const t = `__cairn_shard_${x.name}`;
-    await s.run(`CREATE OR REPLACE TABLE ${ident(t)} AS SELECT * FROM ${ident(x.name)} WHERE ${cond}`);
-    await s.run(`CREATE OR REPLACE VIEW ${ident(x.name)} AS SELECT * FROM ${ident(t)}`);
-    if (oldest.get(x.name) != null) await alignHorizon(run, x.name, t, oldest.get(x.name));
-    const n = Number(await s.scalar(`SELECT count(*) FROM ${ident(t)}`));
+    if (oldest.get(x.name) != null) {
+      await s.run(`CREATE OR REPLACE TABLE ${ident(t)} AS SELECT * FROM ${ident(full)} WHERE ${cond}`);
+      await alignHorizon(run, x.name, t, oldest.get(x.name));
+      await s.run(`CREATE VIEW ${ident(x.name)} AS SELECT * FROM ${ident(t)}`);
+    } else {
+      await s.run(`CREATE VIEW ${ident(x.name)} AS SELECT * FROM ${ident(full)} WHERE ${cond}`);
+    }
+    const n = Number(await s.scalar(`SELECT count(*) FROM ${ident(x.name)}`));
     run.progress.info(`source ${x.name}: ${n} rows for this shard (${m.kind === "trade" ? `${m.reporter} or ${m.partner}` : m.kind === "keyed" ? m.column : "all"} among its ${own.length} of ${all.length} ${sp.by} values)`);
   }
   return { all, own };
