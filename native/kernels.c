@@ -28,6 +28,7 @@
 #include <stdint.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/mman.h>
 #include <unistd.h>
 
 enum { ISA_NONE = 0, ISA_AVX2 = 1, ISA_AVX512 = 2 };
@@ -450,6 +451,37 @@ static napi_value js_solve(napi_env env, napi_callback_info info) {
   return NULL;
 }
 
+/*
+ * adviseHugePages(array): asks the kernel to back the array's whole 2 MiB pages with
+ * transparent huge pages (madvise MADV_HUGEPAGE; Linux, where the system leaves it to
+ * madvise). Call it before the first write: one fault then maps 2 MiB instead of 4 KiB, and on
+ * hosts where a page fault is dear (virtual machines) the first touch of a large array gets many
+ * times cheaper. Returns the bytes advised (0 where nothing could be).
+ */
+static napi_value js_advise_huge(napi_env env, napi_callback_info info) {
+  size_t argc = 1;
+  napi_value argv[1], out;
+  napi_get_cb_info(env, info, &argc, argv, NULL, NULL);
+  double advised = 0;
+  bool is = false;
+  if (argc >= 1 && napi_is_typedarray(env, argv[0], &is) == napi_ok && is) {
+    napi_typedarray_type type;
+    size_t len, off;
+    void *data;
+    napi_value ab;
+    if (napi_get_typedarray_info(env, argv[0], &type, &len, &data, &ab, &off) == napi_ok && data) {
+      size_t el = type == napi_float64_array || type == napi_bigint64_array || type == napi_biguint64_array ? 8 : type == napi_int32_array || type == napi_uint32_array || type == napi_float32_array ? 4 : type == napi_int16_array || type == napi_uint16_array ? 2 : 1;
+#ifdef MADV_HUGEPAGE
+      const uintptr_t H = (uintptr_t)2 << 20;
+      uintptr_t a = ((uintptr_t)data + H - 1) & ~(H - 1), b = ((uintptr_t)data + len * el) & ~(H - 1);
+      if (b > a && madvise((void *)a, b - a, MADV_HUGEPAGE) == 0) advised = (double)(b - a);
+#endif
+    }
+  }
+  napi_create_double(env, advised, &out);
+  return out;
+}
+
 static napi_value js_info(napi_env env, napi_callback_info info) {
   (void)info;
   napi_value o, v;
@@ -482,5 +514,7 @@ NAPI_MODULE_INIT(/* napi_env env, napi_value exports */) {
   napi_set_named_property(env, exports, "solve", fn);
   napi_create_function(env, "info", NAPI_AUTO_LENGTH, js_info, NULL, &fn);
   napi_set_named_property(env, exports, "info", fn);
+  napi_create_function(env, "adviseHugePages", NAPI_AUTO_LENGTH, js_advise_huge, NULL, &fn);
+  napi_set_named_property(env, exports, "adviseHugePages", fn);
   return exports;
 }

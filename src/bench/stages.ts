@@ -7,8 +7,7 @@ import { runPipeline } from "../run/runner.js";
 import { Session } from "../engine/session.js";
 import { lit } from "../engine/sql.js";
 import { nativeReader, readColumns, writeColumns } from "../engine/handoff.js";
-import { wasmKernels } from "../cohort/kernels.js";
-import { kernelVariant } from "../cohort/wasm/index.js";
+import { kernelDescription } from "../cohort/kernels.js";
 import { CohortGroup, curveOf, makeLifetime, type ModelResult } from "../cohort/index.js";
 import { CohortPool, recycle, runTasks, taskFor } from "../cohort/pool.js";
 import { KernelArena } from "../cohort/arena.js";
@@ -190,7 +189,7 @@ export async function cohortStage(series: number, years: number, groups: number,
     inflow_driven_cells_per_s: cells / median(inflowT), stock_driven_cells_per_s: cells / median(stockT),
     composition_cells_per_s: cells / median(compT), round_trip_max_rel_error: maxErr, kernel_check_max_rel_error: kernelErr,
     inflow_driven_runs_s: inflowT, stock_driven_runs_s: stockT, composition_runs_s: compT,
-    cohort_kernels: `${wasmKernels() ? `WebAssembly ${kernelVariant()}` : "TypeScript"}, ${pool.size} worker threads, in place in the cohort arena`,
+    cohort_kernels: `${kernelDescription()}, ${pool.size} worker threads, in place in the cohort arena`,
   };
 }
 

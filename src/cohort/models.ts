@@ -416,8 +416,10 @@ export function composition(g: CohortGroup, inflow: Float64Array, n: number, con
 }
 
 /**
- * Cohort-resolved stock and outflow, streamed: calls `emit` with one series at a time
- * (cohort-major rows for t ≥ c), never holding more than one series' T × T block.
+ * Cohort-resolved stock and outflow, streamed: yields one series at a time (cohort-major rows
+ * for t ≥ c), never holding more than one series' T × T block. The yielded arrays are reused
+ * for the next series (a fresh 160 KB array per series cost more in page faults than the
+ * arithmetic): copy what must outlive the iteration.
  */
 export function* byCohort(g: CohortGroup, inflow: Float64Array, n: number): Generator<{ s: number; cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array }> {
   const T = g.T;
@@ -429,10 +431,10 @@ export function* byCohort(g: CohortGroup, inflow: Float64Array, n: number): Gene
     cohort[k] = c;
     year[k++] = t;
   }
+  const stock = new Float64Array(rows);
+  const outflow = new Float64Array(rows);
+  const inf = new Float64Array(rows);
   for (let s = 0; s < n; s++) {
-    const stock = new Float64Array(rows);
-    const outflow = new Float64Array(rows);
-    const inf = new Float64Array(rows);
     let j = 0;
     for (let c = 0; c < T; c++) {
       const I = inflow[s * T + c]!;

@@ -10,10 +10,10 @@
 import { DOUBLE, DuckDBDataChunk, INTEGER, type DuckDBType } from "@duckdb/node-api";
 import duckdb from "@duckdb/node-bindings";
 import { existsSync, readFileSync } from "node:fs";
-import { availableParallelism } from "node:os";
 import { createRequire } from "node:module";
 import type { Session } from "./session.js";
 import { ident } from "./sql.js";
+import { largeFloat64Array, largeInt32Array } from "../cohort/native.js";
 
 export type ColumnKind = "f64" | "i32";
 const BYTES: Record<ColumnKind, number> = { f64: 8, i32: 4 };
@@ -21,6 +21,8 @@ const BYTES: Record<ColumnKind, number> = { f64: 8, i32: 4 };
 interface NativeReader {
   copyColumns(result: duckdb.Result, targets: (Float64Array | Int32Array)[], widths: number[]): number;
   appendColumns(db: duckdb.Database, table: string, sources: (Float64Array | Int32Array)[], widths: number[], rows: number, threads: number): number;
+  /** Runs `sql` on a connection of its own, off this thread, with the arrays as the temporary view `view` (read in place, in order). */
+  scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<void>;
 }
 
 let native: NativeReader | null | undefined;
@@ -76,7 +78,8 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
   const nat = nativeReader();
   if (nat) {
     const rows = Number((res as unknown as { rowCount: number }).rowCount);
-    const cols = kinds.map((k) => (k === "f64" ? new Float64Array(rows) : new Int32Array(rows)));
+    // Targets in huge pages where the system allows: their first touch (the copy) is most of the cost.
+    const cols = kinds.map((k) => (k === "f64" ? largeFloat64Array(rows) : largeInt32Array(rows)));
     try {
       const copied = nat.copyColumns(raw, cols, kinds.map((k) => BYTES[k]));
       if (copied !== rows) throw new Error(`${copied} rows copied of ${rows}`);
@@ -94,7 +97,7 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
     chunks.push(ch);
     rows += duckdb.data_chunk_get_size(ch);
   }
-  const cols = kinds.map((k) => (k === "f64" ? new Float64Array(rows) : new Int32Array(rows)));
+  const cols = kinds.map((k) => (k === "f64" ? largeFloat64Array(rows) : largeInt32Array(rows)));
   let off = 0;
   for (const ch of chunks) {
     const n = duckdb.data_chunk_get_size(ch);
@@ -118,18 +121,22 @@ export interface OutColumn {
 
 /**
  * Creates `table` with the given columns (unless `create: false`) and appends `rows` rows from
- * the typed arrays. With `keepOrder: false` (for tables read with ORDER BY or aggregated) the
- * native hand-off appends row ranges from several threads at once, and the table's row order
- * is not that of the arrays.
+ * the typed arrays, in their order. With the native hand-off DuckDB reads the arrays in place
+ * (an Arrow view over them, in batches it numbers, so the insert runs on every core and keeps
+ * the order); without it, one data chunk is filled by raw copies and appended, 2048 rows at a
+ * time. `keepOrder: false` (for tables read back with ORDER BY or aggregated) is accepted and
+ * no longer needed: the order is kept either way.
  */
 export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean; keepOrder?: boolean } = {}): Promise<void> {
   if (opts.create !== false) {
     await s.run(`CREATE OR REPLACE TABLE ${ident(table)} (${columns.map((c) => `${ident(c.name)} ${c.kind === "f64" ? "DOUBLE" : "INTEGER"}`).join(", ")})`);
   }
-  const nat = opts.keepOrder === false ? nativeReader() : null;
-  if (nat) {
+  const nat = nativeReader();
+  if (nat && rows > 0) {
     const db = (s.instance as unknown as { db: duckdb.Database }).db;
-    nat.appendColumns(db, table, columns.map((c) => c.data), columns.map((c) => BYTES[c.kind]), rows, availableParallelism());
+    const view = "__cairn_arrays";
+    await nat.scanArrays(db, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
+      columns.map((_, j) => `c${j}`), columns.map((c) => c.data), rows, SCAN_BATCH);
     return;
   }
   const appender = await s.conn.createAppender(table);
@@ -149,4 +156,26 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
     duckdb.append_data_chunk(rawAppender, chunk);
   }
   appender.closeSync();
+}
+
+/** Rows per batch of an in-place scan: DuckDB's row group size, so that each batch fills one. */
+const SCAN_BATCH = 122880;
+
+/**
+ * Runs `sql` (a COPY, CREATE TABLE or INSERT … SELECT … FROM `view`) with the typed arrays as the
+ * temporary view `view` (columns `names`; Float64Array → DOUBLE, Int32Array → INTEGER,
+ * BigInt64Array → BIGINT), read in place and in order, on a connection of its own: no copy into
+ * a table first. The arrays must not change until the promise settles. Null when the native
+ * hand-off is not built (the caller then writes a table with writeColumns).
+ *
+ * The query must read every column of the view and filter nothing in the view's own scan:
+ * DuckDB's Arrow scan through its C API passes neither a projection nor a filter on to the
+ * arrays, and would misread columns left out (compute in the SELECT list, or select from a
+ * subquery that uses every column).
+ */
+export function scanArrays(s: Session, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number): Promise<void> | null {
+  const nat = nativeReader();
+  if (!nat) return null;
+  const db = (s.instance as unknown as { db: duckdb.Database }).db;
+  return nat.scanArrays(db, view, sql, names, sources, rows, SCAN_BATCH);
 }

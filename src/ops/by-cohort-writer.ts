@@ -1,27 +1,58 @@
 /**
  * Cohort-resolved output, streamed: rows (series × cohort × year) are buffered as typed
- * arrays up to a fixed size, appended to a small DuckDB table, written as one Parquet part
- * file into the run's staging directory, and dropped. Memory stays bounded whatever the
- * number of series; per series-year sums are kept for the audit against the totals.
+ * arrays up to a fixed size, put in order (series, cohort, year) in JavaScript and written as
+ * one Parquet part file into the run's staging directory. Memory stays bounded whatever the number of series; per series-year
+ * sums are kept for the audit against the totals.
+ *
+ * Where the time goes (README, "Performance"): a part's rows arrive as runs of one series and
+ * cohort (years ascending), so ordering them is a sort of those runs, not of rows; DuckDB then
+ * reads the ordered arrays in place (native hand-off: an Arrow view, in numbered batches, so the
+ * order holds on every core) and writes them without ORDER BY or join (the series keys come
+ * from a list indexed by the part's own series numbers, written into the statement), so it only
+ * encodes and compresses. While DuckDB writes one part, the next one is being filled.
  */
 import { mkdirSync } from "node:fs";
 import path from "node:path";
 import type { Session } from "../engine/session.js";
 import { ident, lit } from "../engine/sql.js";
-import { writeColumns } from "../engine/handoff.js";
+import { scanArrays, writeColumns } from "../engine/handoff.js";
 import { sha256, type OutputFile } from "../publish/parquet.js";
 import { renameSync, rmSync, statSync } from "node:fs";
 
+/** Above this many series in one part, the keys are joined and the part sorted in DuckDB instead of listed in the statement. */
+const MAX_LISTED_SERIES = 20000;
+
+/** One set of part columns. */
+interface Cols {
+  sid: Int32Array;
+  ci: Int32Array;
+  yi: Int32Array;
+  inflow: Float64Array;
+  outflow: Float64Array;
+  stock: Float64Array;
+  /** The part's own series numbers (0, 1, … in output order), filled at flush. */
+  lsid: Int32Array;
+}
+
+function cols(n: number): Cols {
+  return {
+    sid: new Int32Array(n), ci: new Int32Array(n), yi: new Int32Array(n),
+    inflow: new Float64Array(n), outflow: new Float64Array(n), stock: new Float64Array(n), lsid: new Int32Array(n),
+  };
+}
+
 export class ByCohortWriter {
   private readonly cap: number;
-  private sid: Int32Array;
-  private ci: Int32Array;
-  private yi: Int32Array;
-  private inflow: Float64Array;
-  private outflow: Float64Array;
-  private stock: Float64Array;
+  /** The set being filled, the other one (free again once DuckDB has written it), and the set rows are ordered into when they arrive out of order. */
+  private fill: Cols;
+  private spare: Cols;
+  private out: Cols | null = null;
   private used = 0;
   private part = 0;
+  /** The key values of every series (as text) and the key columns' types, read once from the series table. */
+  private keys: { names: string[]; types: string[]; values: (string | null)[][] } | null = null;
+  /** The part being written by DuckDB while the next one fills. */
+  private pending: Promise<void> | null = null;
   readonly files: OutputFile[] = [];
   /** Σ over cohorts of stock and outflow per series-year (n × T). */
   readonly sumStock: Float64Array;
@@ -41,52 +72,164 @@ export class ByCohortWriter {
     rowsPerPart = 2_000_000,
   ) {
     this.cap = rowsPerPart;
-    this.sid = new Int32Array(this.cap);
-    this.ci = new Int32Array(this.cap);
-    this.yi = new Int32Array(this.cap);
-    this.inflow = new Float64Array(this.cap);
-    this.outflow = new Float64Array(this.cap);
-    this.stock = new Float64Array(this.cap);
+    this.fill = cols(this.cap);
+    this.spare = cols(this.cap);
     this.sumStock = new Float64Array(n * T);
     this.sumOutflow = new Float64Array(n * T);
     mkdirSync(outDir, { recursive: true });
   }
 
-  /** Adds one series' cohort-major rows. */
+  /** Adds one series' rows (any order; a generator's arrays may be reused after the call). */
   async add(sid: number, cohort: Int32Array, year: Int32Array, inflow: Float64Array, outflow: Float64Array, stock: Float64Array): Promise<void> {
     const rows = cohort.length;
     if (this.used + rows > this.cap) await this.flush();
+    if (rows > this.cap) {
+      // One series larger than a part: in parts of its own.
+      for (let at = 0; at < rows; at += this.cap) {
+        const e = Math.min(rows, at + this.cap);
+        await this.add(sid, cohort.subarray(at, e), year.subarray(at, e), inflow.subarray(at, e), outflow.subarray(at, e), stock.subarray(at, e));
+      }
+      return;
+    }
     const o = this.used;
-    this.sid.fill(sid, o, o + rows);
-    this.ci.set(cohort, o);
-    this.yi.set(year, o);
-    this.inflow.set(inflow, o);
-    this.outflow.set(outflow, o);
-    this.stock.set(stock, o);
+    const f = this.fill;
+    f.sid.fill(sid, o, o + rows);
+    f.ci.set(cohort, o);
+    f.yi.set(year, o);
+    f.inflow.set(inflow, o);
+    f.outflow.set(outflow, o);
+    f.stock.set(stock, o);
     const base = sid * this.T;
+    const ss = this.sumStock, so = this.sumOutflow;
     for (let k = 0; k < rows; k++) {
-      this.sumStock[base + year[k]!] += stock[k]!;
-      this.sumOutflow[base + year[k]!] += outflow[k]!;
+      const y = base + year[k]!;
+      ss[y] += stock[k]!;
+      so[y] += outflow[k]!;
     }
     this.used += rows;
   }
 
+  /**
+   * The rows of `f` in output order (series, cohort, year): `f` itself when they came in that
+   * order (the usual case), else a copy into `out` made by moving runs (a run is rows of one
+   * series and cohort with years ascending), or null when runs overlap (the caller then sorts
+   * in DuckDB).
+   */
+  private order(f: Cols, n: number): Cols | null {
+    const { sid, ci, yi } = f;
+    const starts: number[] = [];
+    let sorted = true;
+    for (let i = 0; i < n; i++) {
+      if (i === 0 || sid[i] !== sid[i - 1] || ci[i] !== ci[i - 1] || yi[i]! <= yi[i - 1]!) {
+        starts.push(i);
+        if (i > 0 && !(sid[i]! > sid[i - 1]! || (sid[i] === sid[i - 1] && ci[i]! > ci[i - 1]!))) sorted = false;
+      }
+    }
+    if (sorted) return f;
+    const R = starts.length;
+    const idx = new Int32Array(R).map((_, k) => k);
+    const runs = Int32Array.from(starts);
+    idx.sort((a, b) => sid[runs[a]!]! - sid[runs[b]!]! || ci[runs[a]!]! - ci[runs[b]!]! || yi[runs[a]!]! - yi[runs[b]!]!);
+    const end = (r: number) => (r + 1 < R ? runs[r + 1]! : n);
+    // Runs of one series and cohort must not overlap in years once ordered.
+    for (let k = 1; k < R; k++) {
+      const p = idx[k - 1]!, q = idx[k]!;
+      if (sid[runs[p]!] === sid[runs[q]!] && ci[runs[p]!] === ci[runs[q]!] && yi[end(p) - 1]! >= yi[runs[q]!]!) return null;
+    }
+    const o = (this.out ??= cols(this.cap));
+    let at = 0;
+    for (let k = 0; k < R; k++) {
+      const r = idx[k]!;
+      const a = runs[r]!, b = end(r);
+      o.sid.set(sid.subarray(a, b), at);
+      o.ci.set(ci.subarray(a, b), at);
+      o.yi.set(yi.subarray(a, b), at);
+      o.inflow.set(f.inflow.subarray(a, b), at);
+      o.outflow.set(f.outflow.subarray(a, b), at);
+      o.stock.set(f.stock.subarray(a, b), at);
+      at += b - a;
+    }
+    return o;
+  }
+
+  /** The key columns for the series of a part, as lists written into the statement, indexed by the part's own series numbers. */
+  private async keyLists(sids: number[]): Promise<string> {
+    if (!this.keys) {
+      const desc = await this.s.all(`DESCRIBE SELECT ${this.selectKeys} FROM ${ident(this.sidTable)} m`);
+      const names = desc.map((d) => String(d.column_name));
+      const types = desc.map((d) => String(d.column_type));
+      const rows = await this.s.all(`SELECT ${names.map((c, j) => `CAST(m.${ident(c)} AS VARCHAR) AS k${j}`).join(", ")} FROM ${ident(this.sidTable)} m ORDER BY m.sid`);
+      this.keys = { names, types, values: names.map((_, j) => rows.map((r) => (r[`k${j}`] == null ? null : String(r[`k${j}`])))) };
+    }
+    const k = this.keys;
+    return k.names.map((name, j) => {
+      const list = `[${sids.map((sid) => lit(k.values[j]![sid] ?? null)).join(", ")}]`;
+      return `CAST(${list} AS ${k.types[j]}[])[r.lsid + 1] AS ${ident(name)}`;
+    }).join(", ");
+  }
+
   async flush(): Promise<void> {
     if (this.used === 0) return;
-    const tmp = `__${this.table}_part`;
-    await writeColumns(this.s, tmp, [
-      { name: "sid", kind: "i32", data: this.sid }, { name: "ci", kind: "i32", data: this.ci }, { name: "yi", kind: "i32", data: this.yi },
-      { name: "inflow", kind: "f64", data: this.inflow }, { name: "outflow", kind: "f64", data: this.outflow }, { name: "stock", kind: "f64", data: this.stock },
-    ], this.used, { keepOrder: false }); // copied out with ORDER BY
+    // One part in DuckDB's hands at a time: the set it reads is free again once it is written.
+    await this.settle();
+    const rows = this.used;
+    const filled = this.fill;
+    const ordered = this.order(filled, rows);
+    const src = ordered ?? filled;
+    // The part's own series numbers, in output order (each series' rows are contiguous there).
+    const sids: number[] = [];
+    for (let i = 0; i < rows; i++) {
+      const v = src.sid[i]!;
+      if (i === 0 || v !== src.sid[i - 1]) sids.push(v);
+      src.lsid[i] = sids.length - 1;
+    }
+    const listed = ordered !== null && sids.length <= MAX_LISTED_SERIES;
     const file = path.join(this.outDir, `part-${String(this.part).padStart(5, "0")}.parquet`);
-    await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(r.ci + ${this.y0} AS BIGINT) AS cohort, CAST(r.yi + ${this.y0} AS BIGINT) AS year,
-        r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit
-      FROM ${ident(tmp)} r JOIN ${ident(this.sidTable)} m USING (sid) ORDER BY r.sid, r.ci, r.yi)
-      TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880)`);
-    await this.s.run(`DROP TABLE ${ident(tmp)}`);
-    this.files.push({ table: this.table, file: path.relative(this.runDir, file), rows: this.used, bytes: statSync(file).size, sha256: sha256(file) });
+    const entry: OutputFile = { table: this.table, file: path.relative(this.runDir, file), rows, bytes: 0, sha256: "" };
+    this.files.push(entry);
+    const cols = `CAST(r.ci + ${this.y0} AS BIGINT) AS cohort, CAST(r.yi + ${this.y0} AS BIGINT) AS year, r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit`;
+    const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880)`;
+    const keys = listed ? await this.keyLists(sids) : null;
+    const done = async () => {
+      entry.bytes = statSync(file).size;
+      entry.sha256 = sha256(file);
+    };
+    // DuckDB reads the ordered arrays in place and writes the file while the caller fills the
+    // next part (into the other set when DuckDB reads the filled one). The query reads every
+    // column of the view: DuckDB's Arrow scan through its C API passes no projection on.
+    const inPlace = keys
+      ? scanArrays(this.s, "__cairn_part", `COPY (SELECT ${keys}, ${cols} FROM __cairn_part r) ${to}`,
+        ["lsid", "ci", "yi", "inflow", "outflow", "stock"], [src.lsid, src.ci, src.yi, src.inflow, src.outflow, src.stock], rows)
+      : null;
+    if (inPlace) {
+      if (src === filled) [this.fill, this.spare] = [this.spare, this.fill];
+      this.pending = inPlace.then(done);
+    } else {
+      // Without the native hand-off (or with runs that overlap, or very many series): a table, then the COPY.
+      const tmp = `__${this.table}_part`;
+      await writeColumns(this.s, tmp, [
+        { name: "sid", kind: "i32", data: src.sid }, { name: "lsid", kind: "i32", data: src.lsid }, { name: "ci", kind: "i32", data: src.ci }, { name: "yi", kind: "i32", data: src.yi },
+        { name: "inflow", kind: "f64", data: src.inflow }, { name: "outflow", kind: "f64", data: src.outflow }, { name: "stock", kind: "f64", data: src.stock },
+      ], rows);
+      const query = keys
+        ? `SELECT ${keys}, ${cols} FROM ${ident(tmp)} r`
+        : `SELECT ${this.selectKeys}, ${cols} FROM ${ident(tmp)} r JOIN ${ident(this.sidTable)} m USING (sid) ORDER BY r.sid, r.ci, r.yi`;
+      this.pending = (async () => {
+        await this.s.run(`COPY (${query}) ${to}`);
+        await this.s.run(`DROP TABLE ${ident(tmp)}`);
+        await done();
+      })();
+    }
+    this.pending.catch(() => {}); // observed by settle()
     this.part++;
     this.used = 0;
+  }
+
+  /** Waits for the part DuckDB is writing; rethrows its error. */
+  private async settle(): Promise<void> {
+    const p = this.pending;
+    this.pending = null;
+    if (p) await p;
   }
 
   /**
@@ -96,6 +239,7 @@ export class ByCohortWriter {
    */
   async finish(): Promise<OutputFile[]> {
     await this.flush();
+    await this.settle();
     const single = path.join(this.runDir, `${this.table}.parquet`);
     if (this.files.length === 0) {
       await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS BIGINT) AS cohort, CAST(NULL AS BIGINT) AS year, CAST(NULL AS DOUBLE) AS inflow,
