@@ -8,6 +8,7 @@ import { fileURLToPath } from "node:url";
 import { byCohortStage, cohortStage, handoffStage, SIZES, tableStage, type Size, type StageResult } from "./stages.js";
 import { refreshStage } from "./refresh.js";
 import { mcStage } from "./mc.js";
+import { hostInfo, hostLine } from "./host.js";
 
 const ROOT = path.resolve(path.dirname(fileURLToPath(import.meta.url)), "..", "..");
 const CACHE = path.join(ROOT, ".bench-cache");
@@ -77,10 +78,12 @@ async function main(): Promise<void> {
   }
   const get = (stage: string) => results.find((r) => r.stage === stage)!;
   const t = get("table"), c = get("cohort"), h = get("handoff"), b = get("by_cohort");
+  const host = await hostInfo();
   const lines = [
+    hostLine(host),
     `stage        size                                  median      throughput                 peak RSS`,
     `table        ${t.table_rows} trade + ${t.production_rows} production rows   ${fmt(Number(t.table_stage_s))} s   ${fmt(Number(t.table_rows_per_s))} rows/s; hand-written SQL ${fmt(Number(t.table_raw_duckdb_s))} s (ratio ${Number(t.table_stage_ratio).toFixed(2)})   ${gb(Number(t.table_stage_peak_rss_bytes))} (with the hand-written SQL ${gb(Number(t.peak_rss_bytes))})`,
-    `inflow       ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.inflow_driven_s))} s   ${fmt(Number(c.inflow_driven_cells_per_s))} cells/s   ${gb(Number(c.peak_rss_bytes))} (${c.cohort_kernels})`,
+    `inflow       ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.inflow_driven_s))} s   ${fmt(Number(c.inflow_driven_cells_per_s))} cells/s   ${gb(Number(c.peak_rss_bytes))} (${c.cohort_kernels})${c.numpy_inflow_driven_cells_per_s !== undefined ? `; numpy + OpenBLAS ${fmt(Number(c.numpy_inflow_driven_cells_per_s))} cells/s (cairn ${Number(c.inflow_speed_ratio_to_numpy).toFixed(2)}×; its product alone ${fmt(Number(c.numpy_product_cells_per_s))})` : ""}`,
     `stock        ${c.cohort_series} series × ${c.cohort_years} years            ${fmt(Number(c.stock_driven_s))} s   ${fmt(Number(c.stock_driven_cells_per_s))} cells/s (round trip max rel. error ${fmt(Number(c.round_trip_max_rel_error))})`,
     `composition  ${c.cohort_series} series × ${c.cohort_years} years × 3   ${fmt(Number(c.composition_s))} s   ${fmt(Number(c.composition_cells_per_s))} cells/s`,
     `hand-off     ${h.handoff_values} values                      read ${fmt(Number(h.handoff_read_values_per_s))} values/s, write ${fmt(Number(h.handoff_write_rows_per_s))} rows/s (${h.handoff_native})   ${gb(Number(h.peak_rss_bytes))}`,
@@ -98,10 +101,12 @@ async function main(): Promise<void> {
   }
   process.stderr.write(lines.join("\n") + "\n");
   const summary = {
+    host,
     table_rows: t.table_rows, table_stage_s: t.table_stage_s, table_raw_duckdb_s: t.table_raw_duckdb_s, table_stage_ratio: t.table_stage_ratio,
     cohort_series: c.cohort_series, cohort_years: c.cohort_years,
     inflow_driven_cells_per_s: c.inflow_driven_cells_per_s, stock_driven_cells_per_s: c.stock_driven_cells_per_s, composition_cells_per_s: c.composition_cells_per_s,
     handoff_read_values_per_s: h.handoff_read_values_per_s, handoff_write_rows_per_s: h.handoff_write_rows_per_s,
+    ...(c.numpy_inflow_driven_cells_per_s !== undefined ? { numpy_inflow_driven_cells_per_s: c.numpy_inflow_driven_cells_per_s, numpy_product_cells_per_s: c.numpy_product_cells_per_s, inflow_speed_ratio_to_numpy: c.inflow_speed_ratio_to_numpy } : {}),
     cohort_kernels: c.cohort_kernels, handoff_path: h.handoff_native,
     by_cohort_rows: b.by_cohort_rows, by_cohort_peak_rss_bytes: b.peak_rss_bytes,
     peak_rss_bytes: Math.max(...results.map((r) => Number(r.peak_rss_bytes))),

@@ -1,6 +1,8 @@
 /** Benchmark stages. Each runs in its own process so that its peak RSS is its own. */
 import { existsSync, mkdirSync, readFileSync, rmSync, writeFileSync } from "node:fs";
 import path from "node:path";
+import { spawnSync } from "node:child_process";
+import { fileURLToPath } from "node:url";
 import { generateSynthetic, synthPipeline } from "../data/synth.js";
 import { loadPipeline } from "../spec/load.js";
 import { runPipeline } from "../run/runner.js";
@@ -122,6 +124,29 @@ export function cohortWorkload(series: number, years: number, groups: number, se
   return { inflow, groups: gs };
 }
 
+/**
+ * The same inflow-driven workload written independently with numpy and OpenBLAS
+ * (scripts/numpy-cohort.py), run on this machine right after cairn's, when python3 has numpy:
+ * its cells/s for the model (outflow, stock, stock change) and for the product alone, and
+ * cairn's speed as a multiple of numpy's model. Empty (with a note) without python3 or numpy.
+ */
+function numpyCohort(series: number, years: number, groups: number, cairnCellsPerS: number): Record<string, number | string> {
+  const script = path.resolve(path.dirname(fileURLToPath(import.meta.url)), "..", "..", "scripts", "numpy-cohort.py");
+  const py = spawnSync("python3", [script, "--series", String(series), "--years", String(years), "--groups", String(groups)], { encoding: "utf8", timeout: 20 * 60 * 1000 });
+  if (py.status !== 0) {
+    say(`numpy cohort reference not run (${py.error?.message ?? py.stderr.trim().split("\n").pop()})`);
+    return {};
+  }
+  const j = JSON.parse(py.stdout.trim().split("\n").pop()!) as { inflow_driven_cells_per_s: number; product_cells_per_s: number; inflow_driven_strategy: string; outflow_max_rel_error_vs_plain_sums: number; blas?: { name?: string; version?: string } };
+  if (!(j.outflow_max_rel_error_vs_plain_sums < 1e-9)) throw new Error(`bench: the numpy reference's outflow differs from plain sums by ${j.outflow_max_rel_error_vs_plain_sums}`);
+  say(`numpy + ${j.blas?.name ?? "BLAS"} ${j.blas?.version ?? ""}: inflow-driven ${j.inflow_driven_cells_per_s.toExponential(2)} cells/s (${j.inflow_driven_strategy}), product alone ${j.product_cells_per_s.toExponential(2)} cells/s`);
+  return {
+    numpy_inflow_driven_cells_per_s: j.inflow_driven_cells_per_s, numpy_product_cells_per_s: j.product_cells_per_s,
+    numpy_blas: `${j.blas?.name ?? "unknown"} ${j.blas?.version ?? ""}`.trim(),
+    inflow_speed_ratio_to_numpy: cairnCellsPerS / j.inflow_driven_cells_per_s,
+  };
+}
+
 export async function cohortStage(series: number, years: number, groups: number, runs: number): Promise<StageResult> {
   const w = cohortWorkload(series, years, groups);
   const cells = series * years * (years + 1) / 2;
@@ -184,6 +209,7 @@ export async function cohortStage(series: number, years: number, groups: number,
   }, (i, t) => say(`composition (3 materials) run ${i}/${runs}: ${t.toFixed(2)} s`), 1);
   await CohortPool.closeShared();
   return {
+    ...numpyCohort(series, years, groups, cells / median(inflowT)),
     stage: "cohort", cohort_series: series, cohort_years: years, cohort_groups: groups, cells_per_run: cells,
     inflow_driven_s: median(inflowT), stock_driven_s: median(stockT), composition_s: median(compT),
     inflow_driven_cells_per_s: cells / median(inflowT), stock_driven_cells_per_s: cells / median(stockT),
