@@ -188,7 +188,10 @@ export class ByCohortWriter {
     const entry: OutputFile = { table: this.table, file: path.relative(this.runDir, file), rows, bytes: 0, sha256: "" };
     this.files.push(entry);
     const cols = `CAST(r.ci + ${this.y0} AS BIGINT) AS cohort, CAST(r.yi + ${this.y0} AS BIGINT) AS year, r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit`;
-    const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880)`;
+    // zstd at level 1: the parts are the largest output by far and their encoding is most of the
+    // step's time; level 1 took about a fifth less time than the default level 3 here, for files
+    // a few per cent larger.
+    const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)`;
     const keys = listed ? await this.keyLists(sids) : null;
     const done = async () => {
       entry.bytes = statSync(file).size;
