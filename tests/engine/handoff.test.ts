@@ -2,7 +2,7 @@ import { describe, expect, it } from "vitest";
 import { existsSync } from "node:fs";
 import path from "node:path";
 import { Session } from "../../src/engine/session.js";
-import { nativeReader, readColumns, useNativeReader, writeColumns } from "../../src/engine/handoff.js";
+import { nativeReader, ReadBuffers, readColumns, useNativeReader, writeColumns } from "../../src/engine/handoff.js";
 import { ROOT } from "../helpers.js";
 
 const N = 5000; // more than two DuckDB chunks (2048 rows each)
@@ -36,6 +36,28 @@ describe("hand-off between DuckDB and typed arrays", () => {
       }
     });
   }
+
+  it("reads into kept buffers: the second read reuses the first read's memory and gives the new rows", async () => {
+    const s = await Session.open();
+    try {
+      const b = new ReadBuffers();
+      const sql = (n: number, f: number) => `SELECT CAST(i AS DOUBLE) * ${f} AS v, CAST(i AS INTEGER) AS k FROM range(${n}) t(i) ORDER BY i`;
+      const first = await readColumns(s, sql(N, 0.5), ["f64", "i32"], b);
+      const second = await readColumns(s, sql(N - 100, 0.25), ["f64", "i32"], b);
+      expect(second.columns[0]!.buffer).toBe(first.columns[0]!.buffer); // the same memory, no new array
+      expect(second.columns[0]!.length).toBe(N - 100);
+      const ref = await reference(s, sql(N - 100, 0.25)); // node-api's own row reader
+      for (let i = 0; i < N - 100; i += 37) {
+        expect(second.columns[0]![i]).toBe(ref[i]![0]);
+        expect(second.columns[1]![i]).toBe(ref[i]![1]);
+      }
+      const larger = await readColumns(s, sql(N + 10, 1), ["f64", "i32"], b);
+      expect(larger.columns[0]!.buffer).not.toBe(first.columns[0]!.buffer); // too small: a new array
+      expect(larger.columns[0]![N + 9]).toBe(N + 9);
+    } finally {
+      s.close();
+    }
+  });
 
   it.runIf(existsSync(path.join(ROOT, "build", "cairn_handoff.node")))("the native reader, built at install, loads", () => {
     expect(nativeReader()).not.toBeNull();
