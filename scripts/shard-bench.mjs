@@ -6,7 +6,12 @@
  * per run, the wall time from submission to the merged run, each shard's time, the merge's time
  * and its share of the wall time, and whether the merged tables are the single run's bytes.
  *
- *   node scripts/shard-bench.mjs [--size S|M] [--shards 1,2,4] [--cpus 1] [--merge-cpus N] [--json]
+ *   node scripts/shard-bench.mjs [--size S|M] [--shards 1,2,4] [--cpus 1] [--merge-cpus N] [--mc DRAWS] [--json]
+ *
+ * --mc DRAWS: the history model also declares Monte Carlo uncertainty (DRAWS draws, lifetime
+ * means ±15 %, input ±5 %, totals over everything and per region). A cohort model with Monte
+ * Carlo runs at the merge (its per-draw totals cross shards), so this shows what sharding does
+ * not yet split.
  *
  * --cpus: CPUs per shard job (default 1); --merge-cpus: for the merge job (default all of the node's).
  *
@@ -35,6 +40,7 @@ const cpus = Number(arg("cpus", "1"));
 const nprocAll = Number(execFileSync("nproc", { encoding: "utf8" }).trim());
 const mergeCpus = Number(arg("merge-cpus", String(nprocAll)));
 const json = process.argv.includes("--json");
+const mcDraws = Number(arg("mc", "0"));
 const log = (m) => process.stderr.write(`shard-bench: ${m}\n`);
 // Timings mean little on a busy machine: the load average is printed with them.
 const loadBefore = readFileSync("/proc/loadavg", "utf8").split(" ").slice(0, 3).join(" ");
@@ -48,7 +54,7 @@ if (!existsSync(path.join(data, "synth.json"))) {
 const synth = JSON.parse(readFileSync(path.join(data, "synth.json"), "utf8"));
 const last = synth.firstYear + synth.years - 1;
 
-const work = path.join(ROOT, ".bench-cache", "shard-bench", size);
+const work = path.join(ROOT, ".bench-cache", "shard-bench", mcDraws > 0 ? `${size}-mc${mcDraws}` : size);
 rmSync(work, { recursive: true, force: true });
 mkdirSync(work, { recursive: true });
 // Lifetimes by product (the synthetic concordance has products P0 … P39): Weibull, means 10–49 years.
@@ -91,7 +97,13 @@ steps:
     keys: [region, product]
     lifetimes: lifetimes
     negative_inflow: clamp
-  - id: stock_path
+${mcDraws > 0 ? `    uncertainty:
+      draws: ${mcDraws}
+      seed: 7
+      lifetimes: { mean: { family: normal, rel_sd: 0.15, truncate_below: 0 } }
+      input: { spread: { family: normal, rel_sd: 0.05 } }
+      totals: [[], [region]]
+` : ""}  - id: stock_path
     kind: sql
     inputs: [stocks]
     query: >
@@ -167,10 +179,10 @@ try {
       timings: { shard_steps: manifest(st.shards[0].dir).timings_s, merge: mm.timings_s },
     });
   }
-  const info = { load_average_before: loadBefore, size, trade_rows: synth.tradeRows, production_rows: synth.productionRows, regions: synth.regions, series, years: synth.years, scenario_years: 150, cpus_per_shard: cpus, cpus_merge: mergeCpus, node_cpus: nproc };
+  const info = { load_average_before: loadBefore, size, trade_rows: synth.tradeRows, production_rows: synth.productionRows, regions: synth.regions, series, years: synth.years, scenario_years: 150, mc_draws: mcDraws, cpus_per_shard: cpus, cpus_merge: mergeCpus, node_cpus: nproc };
   if (json) process.stdout.write(JSON.stringify({ ...info, results }) + "\n");
   else {
-    process.stdout.write(`sharded runs, ${size}: ${synth.tradeRows} trade rows, ${synth.productionRows} production rows, ${synth.regions} regions, ${series} series × ${synth.years} years + 150 scenario years; ${cpus} CPU per shard, ${mergeCpus} for the merge, on a ${nproc}-CPU node (load average before: ${loadBefore})\n`);
+    process.stdout.write(`sharded runs, ${size}: ${synth.tradeRows} trade rows, ${synth.productionRows} production rows, ${synth.regions} regions, ${series} series × ${synth.years} years + 150 scenario years${mcDraws > 0 ? `, Monte Carlo ${mcDraws} draws on the history model` : ""}; ${cpus} CPU per shard, ${mergeCpus} for the merge, on a ${nproc}-CPU node (load average before: ${loadBefore})\n`);
     process.stdout.write(`${"run".padEnd(22)} ${"wall s".padStart(7)} ${"shards s (each)".padEnd(28)} ${"merge s".padStart(8)} ${"merge share".padStart(12)}  same bytes\n`);
     for (const x of results) {
       process.stdout.write(`${x.run.padEnd(22)} ${x.wall_s.toFixed(1).padStart(7)} ${(x.shard_s ? x.shard_s.map((v) => v.toFixed(1)).join(", ") : "-").padEnd(28)} ${(x.merge_s === null ? "-" : x.merge_s.toFixed(1)).padStart(8)} ${(x.merge_share === null ? "-" : `${(100 * x.merge_share).toFixed(0)} %`).padStart(12)}  ${x.identical ? "yes" : "NO"}\n`);

@@ -421,9 +421,11 @@ async function groupTotals(ctx: StepContext, o: O): Promise<GroupTotal[]> {
 /** Totals must come from per-draw sums: their mean is the sum of the series' means, their sd at most the sum of their sds. */
 async function totalsAudit(ctx: StepContext, o: O, table: string, gt: GroupTotal[]): Promise<void> {
   const K = o.keys.map((k) => ident(k));
+  // The series' sums are taken in key order: a parallel sum's order (and its last bits) would
+  // follow the table's layout, and a merged run must audit to the same bytes as a single one.
   // A total's series: those agreeing on every key it keeps; for a group total, those whose key is a member of the group.
   const part = (where: string, match: (k: string) => string) => `SELECT t.total_over, ${K.map((k) => `t.${k}`).join(", ")}, t.material, t.variable, t.year, any_value(t.mean) AS tm, any_value(t.sd) AS tsd,
-      sum(s.mean) AS sm, sum(s.sd) AS ssd
+      sum(s.mean ORDER BY ${K.map((k) => `s.${k}`).join(", ")}) AS sm, sum(s.sd ORDER BY ${K.map((k) => `s.${k}`).join(", ")}) AS ssd
     FROM ${ident(table)} t JOIN ${ident(table)} s ON s.total_over IS NULL AND ${where} AND ${o.keys.map(match).join(" AND ")}
       AND s.material IS NOT DISTINCT FROM t.material AND s.variable = t.variable AND s.year = t.year
     GROUP BY ALL`;
