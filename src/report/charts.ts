@@ -4,8 +4,9 @@
  * it) stock, inflow and outflow by product, stock by material, and the age structure of the
  * stock in the newest year (or, without a by-cohort table, the mean age of the stock).
  */
-import { ident } from "../engine/sql.js";
+import { ident, lit } from "../engine/sql.js";
 import type { ManifestStep, RunReader } from "./data.js";
+import { chartRows } from "./lump.js";
 import type { VlSpec, YearRow } from "./render.js";
 import { agePanels, flowPanels, lines, lumpSeries, panels, scaled, type AgeRow, type FlowRow } from "./specs.js";
 import { fmtNum } from "./html.js";
@@ -30,7 +31,7 @@ async function columns(r: RunReader, table: string): Promise<Set<string>> {
 async function unitOf(r: RunReader, table: string, cols: Set<string>): Promise<{ unit: string; mixed: boolean }> {
   const base = r.manifest.pipeline.base_unit ?? "";
   if (!cols.has("unit")) return { unit: base, mixed: false };
-  const u = (await r.all(`SELECT DISTINCT CAST(unit AS VARCHAR) AS u FROM ${r.table(table)} WHERE unit IS NOT NULL ORDER BY 1`)).map((x) => String(x.u));
+  const u = await r.distinctText(table, "unit");
   return u.length === 1 ? { unit: u[0]!, mixed: false } : { unit: u.length ? "mixed units" : base, mixed: u.length > 1 };
 }
 
@@ -41,7 +42,14 @@ function seriesKey(keys: string[], cols: Set<string>, prefer: string[]): string 
 }
 
 const seriesExpr = (by: string | null, mixed: boolean) =>
-  `${by ? `CAST(${ident(by)} AS VARCHAR)` : "'total'"}${mixed ? ` || ' (' || CAST(unit AS VARCHAR) || ')'` : ""}`;
+  `coalesce(${by ? `CAST(${ident(by)} AS VARCHAR)` : "'total'"}${mixed ? ` || ' (' || CAST(unit AS VARCHAR) || ')'` : ""}, 'null')`;
+
+/**
+ * Whether a table holds one row per series and `dims` (its keys are among them, besides the series
+ * key): its sums over the other keys are its values, and need no grouping (a cohort model's tables).
+ */
+const onePerRow = (keys: string[], by: string | null, dims: string[]): boolean =>
+  keys.length > 0 && dims.every((d) => keys.includes(d)) && keys.every((k) => k === by || dims.includes(k));
 
 /** One sentence on lines over the years: span, series and the newest year's values. */
 function describe(what: string, rows: { series: string; year: number; value: number; phase?: string }[], unit: string): string {
@@ -68,8 +76,9 @@ async function consumptionCharts(r: RunReader, step: ManifestStep): Promise<Char
         items.push({ note: `${out.name} has no ${by} column: no chart by ${by}.` });
         continue;
       }
-      const raw = (await r.all(`SELECT ${seriesExpr(by, mixed)} AS series, CAST(year AS INTEGER) AS year, CAST(sum(consumption) AS DOUBLE) AS value
-        FROM ${r.table(out.name)} GROUP BY ALL ORDER BY 1, 2`)) as unknown as YearRow[];
+      // The sums by series and year, lumped in DuckDB when there are more than 10 series.
+      const raw = (await chartRows(r, `SELECT ${seriesExpr(by, mixed)} AS series, CAST(year AS INTEGER) AS year, CAST(sum(consumption) AS DOUBLE) AS value
+        FROM ${r.table(out.name)} GROUP BY ALL`, { values: ["value"], order: ["series", "year"], max: 10 })).rows as unknown as YearRow[];
       const s = scaled(lumpSeries(raw, 10), unit);
       const others = ["region", "product", "material"].filter((k) => k !== by && cols.has(k));
       items.push({
@@ -140,9 +149,11 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
   const items: ChartItem[] = [];
   const names = chain.map((s) => s.id).join(" → ");
   let unit = r.manifest.pipeline.base_unit ?? "";
-  // Stock, inflow and outflow by product.
+  const links = chain.filter((s) => s.continues).map((s) => ({ from: phase.get(s.continues!), to: phase.get(s.id)! }));
+  // Stock, inflow and outflow by product (each model's sums in DuckDB, lumped there when there are many products).
   const flows: FlowRow[] = [];
-  for (const s of chain) {
+  const parts: string[] = [];
+  for (const [i, s] of chain.entries()) {
     const t = mainOf(s);
     if (!r.has(t)) continue;
     const cols = await columns(r, t);
@@ -150,11 +161,20 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
     const u = await unitOf(r, t, cols);
     unit = u.unit;
     const by = seriesKey(keys, cols, ["product"]);
-    for (const x of await r.all(`SELECT ${seriesExpr(by, u.mixed)} AS series, CAST(year AS INTEGER) AS year, CAST(sum(stock) AS DOUBLE) AS stock,
-        CAST(sum(inflow) AS DOUBLE) AS inflow, CAST(sum(outflow) AS DOUBLE) AS outflow FROM ${r.table(t)} GROUP BY ALL ORDER BY 1, 2`)) {
-      for (const v of ["stock", "inflow", "outflow"]) flows.push({ series: String(x.series), year: Number(x.year), value: Number(x[v] ?? 0), phase: phase.get(s.id)!, variable: v });
+    const one = onePerRow(keys, by, ["year"]);
+    const sum = (c: string) => `CAST(${one ? ident(c) : `sum(${ident(c)})`} AS DOUBLE) AS ${c}`;
+    parts.push(`SELECT ${i} AS part, ${lit(phase.get(s.id)!)} AS phase, ${seriesExpr(by, u.mixed)} AS series, CAST(year AS INTEGER) AS year,
+        ${sum("stock")}, ${sum("inflow")}, ${sum("outflow")} FROM ${r.table(t)}${one ? "" : " GROUP BY ALL"}`);
+  }
+  let flowKey = (x: string) => x;
+  if (parts.length) {
+    const got = await chartRows(r, parts.join(" UNION ALL "), { values: ["stock", "inflow", "outflow"], order: ["part", "series", "year"], links, max: 12 });
+    flowKey = got.sortKey;
+    for (const x of got.rows) {
+      for (const v of ["stock", "inflow", "outflow"]) flows.push({ series: String(x.series), year: Number(x.year), value: Number(x[v] ?? 0), phase: String(x.phase), variable: v });
     }
   }
+  const flowSeries = [...new Set(flows.map((f) => f.series))];
   // Monte Carlo ranges of the stock per series (totals over the other keys), where the steps have them.
   const ranges = new Map<string, { lo: number; hi: number }>();
   let rangeNote = "";
@@ -168,8 +188,10 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
     const q = [...ucols].filter((c) => /^q\d/.test(c)).sort();
     if (!by || q.length < 2) continue;
     const over = keys.filter((k) => k !== by).join(",");
+    // Only the series drawn (a lumped series has no range).
     for (const x of await r.all(`SELECT CAST(${ident(by)} AS VARCHAR) AS series, CAST(year AS INTEGER) AS year, ${ident(q[0]!)} AS lo, ${ident(q[q.length - 1]!)} AS hi
-        FROM ${r.table(ut)} WHERE total_over = '${over.replace(/'/g, "''")}' AND variable = 'stock' AND material IS NULL`)) {
+        FROM ${r.table(ut)} WHERE total_over = ${lit(over)} AND variable = 'stock' AND material IS NULL
+          AND CAST(${ident(by)} AS VARCHAR) IN (${flowSeries.length ? flowSeries.map(lit).join(", ") : "NULL"})`)) {
       ranges.set(`${x.series}\u0000${x.year}\u0000${phase.get(s.id)}`, { lo: Number(x.lo), hi: Number(x.hi) });
     }
     const pct = (c: string) => Number(c.slice(1).replace("_", "."));
@@ -183,7 +205,7 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
   const seam = seamOf(flows, chain, phase);
   const phaseNote = seam !== undefined ? ` History solid, scenario dashed from ${seam + 0.5} (dotted rule at the seam).` : "";
   if (flows.length) {
-    const joined = join(flows, chain, phase, (x) => `${x.variable}\u0000${x.series}\u0000${x.phase}`);
+    const joined = join(flows, chain, phase, (x) => `${x.variable}\u0000${flowKey(x.series)}\u0000${x.phase}`);
     const s = scaled(lumpSeries(joined, 12), unit);
     const stock = s.rows.filter((x) => x.variable === "stock");
     const io = s.rows.filter((x) => x.variable !== "stock");
@@ -204,18 +226,24 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
   }
   // Stock by material.
   const mats: YearRow[] = [];
-  for (const s of chain) {
+  const matParts: string[] = [];
+  for (const [i, s] of chain.entries()) {
     const t = `${s.id}_materials`;
     if (!r.has(t)) continue;
     const cols = await columns(r, t);
     if (!cols.has("material") || !cols.has("stock")) continue;
     const u = await unitOf(r, t, cols);
-    for (const x of await r.all(`SELECT ${seriesExpr("material", u.mixed)} AS series, CAST(year AS INTEGER) AS year, CAST(sum(stock) AS DOUBLE) AS value FROM ${r.table(t)} GROUP BY ALL ORDER BY 1, 2`)) {
-      mats.push({ series: String(x.series), year: Number(x.year), value: Number(x.value), phase: phase.get(s.id)! });
-    }
+    matParts.push(`SELECT ${i} AS part, ${lit(phase.get(s.id)!)} AS phase, ${seriesExpr("material", u.mixed)} AS series, CAST(year AS INTEGER) AS year,
+      CAST(sum(stock) AS DOUBLE) AS value FROM ${r.table(t)} GROUP BY ALL`);
+  }
+  let matKey = (x: string) => x;
+  if (matParts.length) {
+    const got = await chartRows(r, matParts.join(" UNION ALL "), { values: ["value"], order: ["part", "series", "year"], links, max: 12 });
+    matKey = got.sortKey;
+    for (const x of got.rows) mats.push({ series: String(x.series), year: Number(x.year), value: Number(x.value), phase: String(x.phase) });
   }
   if (mats.length) {
-    const s = scaled(lumpSeries(join(mats, chain, phase, (x) => `${x.series}\u0000${x.phase}`), 12), unit);
+    const s = scaled(lumpSeries(join(mats, chain, phase, (x) => `${matKey(x.series)}\u0000${x.phase}`), 12), unit);
     items.push({
       spec: panels({
         title: `Material stock in use by material (${names}, ${s.unit})`,
@@ -236,9 +264,11 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
     const keys = s.outputs.find((o) => o.name === t)?.keys ?? [];
     const u = await unitOf(r, t, cols);
     const by = seriesKey(keys, cols, ["product"]);
-    const year = Number((await r.all(`SELECT max(year) AS y FROM ${r.table(t)}`))[0]?.y);
-    const rows = (await r.all(`SELECT ${seriesExpr(by, u.mixed)} AS series, CAST(year - cohort AS INTEGER) AS age, CAST(sum(stock) AS DOUBLE) AS value
-      FROM ${r.table(t)} WHERE year = ${year} GROUP BY ALL ORDER BY 1, 2`)) as unknown as AgeRow[];
+    // The newest year from the files' statistics, and the one pass over the by-cohort table that the ages of that year need.
+    const year = Number(await r.maxOf(t, "year"));
+    const one = onePerRow(keys, by, ["cohort", "year"]);
+    const rows = (await chartRows(r, `SELECT ${seriesExpr(by, u.mixed)} AS series, CAST(year - cohort AS INTEGER) AS age, CAST(${one ? "stock" : "sum(stock)"} AS DOUBLE) AS value
+      FROM ${r.table(t)} WHERE year = ${lit(year)}${one ? "" : " GROUP BY ALL"}`, { values: ["value"], order: ["series", "age"], max: 12 })).rows as unknown as AgeRow[];
     const sc = scaled(lumpSeries(rows, 12), u.unit);
     const total = sc.rows.reduce((a, x) => a + x.value, 0);
     const w = sc.rows.reduce((a, x) => a + x.age * x.value, 0);
@@ -255,20 +285,26 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
   if (without.length) {
     items.push({ note: `Age structure not available for ${without.map((s) => s.id).join(", ")}: ${without.length > 1 ? "these steps publish" : "the step publishes"} no ${without.map((s) => `${s.id}_by_cohort`).join(", ")} table. The mean age of the stock over time is shown instead.` });
     const ages: YearRow[] = [];
-    for (const s of chain) {
+    const ageParts: string[] = [];
+    for (const [i, s] of chain.entries()) {
       const t = mainOf(s);
       if (!r.has(t)) continue;
       const cols = await columns(r, t);
       if (!cols.has("mean_age_stock")) continue;
       const by = seriesKey(s.outputs.find((o) => o.name === t)?.keys ?? [], cols, ["product"]);
-      for (const x of await r.all(`SELECT ${seriesExpr(by, false)} AS series, CAST(year AS INTEGER) AS year,
+      ageParts.push(`SELECT ${i} AS part, ${lit(phase.get(s.id)!)} AS phase, ${seriesExpr(by, false)} AS series, CAST(year AS INTEGER) AS year,
           CAST(sum(mean_age_stock * stock) / nullif(sum(stock) FILTER (WHERE mean_age_stock IS NOT NULL), 0) AS DOUBLE) AS value
-          FROM ${r.table(t)} GROUP BY ALL HAVING value IS NOT NULL ORDER BY 1, 2`)) {
-        ages.push({ series: String(x.series), year: Number(x.year), value: Number(x.value), phase: phase.get(s.id)! });
-      }
+          FROM ${r.table(t)} GROUP BY ALL HAVING value IS NOT NULL`);
+    }
+    let ageKey = (x: string) => x;
+    if (ageParts.length) {
+      // lumpSeries' semantics kept: the others' values are summed.
+      const got = await chartRows(r, ageParts.join(" UNION ALL "), { values: ["value"], order: ["part", "series", "year"], links, max: 10 });
+      ageKey = got.sortKey;
+      for (const x of got.rows) ages.push({ series: String(x.series), year: Number(x.year), value: Number(x.value), phase: String(x.phase) });
     }
     if (ages.length) {
-      const rows = lumpSeries(join(ages, chain, phase, (x) => `${x.series}\u0000${x.phase}`), 10);
+      const rows = lumpSeries(join(ages, chain, phase, (x) => `${ageKey(x.series)}\u0000${x.phase}`), 10);
       items.push({
         spec: lines({
           title: `Mean age of the stock by product (${names}, years)`,

@@ -55,3 +55,87 @@ export function tableRows(html: string, cls: string): CellText[][] {
 export function charts(html: string): string[] {
   return [...html.matchAll(/<figure class="chart"[^>]*>([\s\S]*?)<\/figure>/g)].map((m) => m[1]!);
 }
+
+/**
+ * A run with more series than a chart keeps: 40 products × 2 regions, 14 materials, 14 consuming
+ * regions; a history (with its by-cohort table and Monte Carlo ranges) and a scenario that
+ * continues it (no by-cohort table, so the mean age is charted). Invented figures.
+ */
+export function manySeriesRun(): string {
+  const base = tmp("cairn-report-many-");
+  const years = (a: number, b: number) => Array.from({ length: b - a + 1 }, (_, i) => a + i);
+  const products = Array.from({ length: 40 }, (_, i) => `p${String(i + 1).padStart(2, "0")}`);
+  const regions = ["NOR", "SUD"];
+  const materials = Array.from({ length: 14 }, (_, i) => `m${String(i + 1).padStart(2, "0")}`);
+  const inflow = (from: number, to: number) => ["region,product,year,value", ...regions.flatMap((r, ri) => products.flatMap((p, pi) =>
+    years(from, to).map((y) => `${r},${p},${y},${(((pi + 1) ** 1.5) * (1 + 0.04 * (y - 2000)) * (ri ? 0.7 : 1.3) + (pi % 3)).toFixed(3)}`)))].join("\n");
+  const content = ["material,content", ...materials.map((m, i) => `${m},${(0.005 + 0.01 * i).toFixed(3)}`)].join("\n");
+  const consumers = Array.from({ length: 14 }, (_, i) => `Q${String(i + 1).padStart(2, "0")}`);
+  const production = ["region,commodity,year,quantity", ...consumers.flatMap((c, i) => years(2000, 2011).map((y) => `${c},ore,${y},${(100 + 37 * i + 3 * (y - 2000)).toFixed(1)}`))].join("\n");
+  const trade = ["reporter,partner,commodity,flow,year,quantity", ...consumers.slice(0, 4).map((c, i) => `${c},${consumers[i + 5]},ore,export,2005,${10 + i}`)].join("\n");
+  const files: Record<string, string> = {
+    "hist.csv": inflow(2000, 2011),
+    "scen.csv": inflow(2012, 2016),
+    "lifetimes.csv": "distribution,mean,sd\nnormal,9,3",
+    "content.csv": content,
+    "production.csv": production,
+    "trade.csv": trade,
+    "concordance.csv": "commodity,product,material,factor,share\nore,metal,iron,1,1",
+  };
+  for (const [name, text] of Object.entries(files)) writeFileSync(path.join(base, name), text + "\n");
+  const flows = (file: string) => `
+    path: ${file}
+    unit: t
+    columns: { region: { type: text, key: true }, product: { type: text, key: true }, year: { type: integer, key: true }, value: quantity }`;
+  writeFileSync(path.join(base, "p.yaml"), `name: many
+base_unit: t
+sources:
+  hist_inflow:${flows("hist.csv")}
+  scen_inflow:${flows("scen.csv")}
+  lifetimes:
+    path: lifetimes.csv
+    columns: { distribution: text, mean: number, sd: number }
+  content:
+    path: content.csv
+    columns: { material: text, content: number }
+  production:
+    path: production.csv
+    unit: t
+    columns: { region: { type: text, key: true }, commodity: { type: text, key: true }, year: { type: integer, key: true }, quantity: quantity }
+  trade:
+    path: trade.csv
+    unit: t
+    columns: { reporter: { type: text, key: true }, partner: { type: text, key: true }, commodity: { type: text, key: true }, flow: { type: text, key: true }, year: { type: integer, key: true }, quantity: quantity }
+  concordance:
+    path: concordance.csv
+    columns: { commodity: text, product: text, material: text, factor: number, share: number }
+steps:
+  - id: consumption
+    kind: apparent-consumption
+    production: production
+    trade: trade
+    concordance: concordance
+    keys: [region, product, material]
+  - id: hist
+    kind: cohort-model
+    mode: inflow-driven
+    input: hist_inflow
+    keys: [region, product]
+    lifetimes: lifetimes
+    content: content
+    by_cohort: true
+    uncertainty: { draws: 20, seed: 7, lifetimes: { mean: { family: normal, rel_sd: 0.1, truncate_below: 0 } }, totals: [[], [product]] }
+  - id: scen
+    kind: cohort-model
+    mode: inflow-driven
+    input: scen_inflow
+    keys: [region, product]
+    lifetimes: lifetimes
+    content: content
+    continues: { step: hist, year: 2011 }
+`);
+  const dir = path.join(base, "run");
+  const r = cli(["run", path.join(base, "p.yaml"), "--out", dir, "--quiet"]);
+  if (r.code !== 0) throw new Error(`many-series run failed (${r.code}): ${r.stderr}`);
+  return dir;
+}
