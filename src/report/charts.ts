@@ -293,22 +293,25 @@ async function chainCharts(r: RunReader, chain: ManifestStep[]): Promise<ChartGr
       if (!cols.has("mean_age_stock")) continue;
       const by = seriesKey(s.outputs.find((o) => o.name === t)?.keys ?? [], cols, ["product"]);
       ageParts.push(`SELECT ${i} AS part, ${lit(phase.get(s.id)!)} AS phase, ${seriesExpr(by, false)} AS series, CAST(year AS INTEGER) AS year,
-          CAST(sum(mean_age_stock * stock) / nullif(sum(stock) FILTER (WHERE mean_age_stock IS NOT NULL), 0) AS DOUBLE) AS value
-          FROM ${r.table(t)} GROUP BY ALL HAVING value IS NOT NULL`);
+          CAST(sum(mean_age_stock * stock) FILTER (WHERE mean_age_stock IS NOT NULL) AS DOUBLE) AS age_stock,
+          CAST(sum(stock) FILTER (WHERE mean_age_stock IS NOT NULL) AS DOUBLE) AS aged_stock
+          FROM ${r.table(t)} GROUP BY ALL HAVING aged_stock <> 0`);
     }
     let ageKey = (x: string) => x;
     if (ageParts.length) {
-      // lumpSeries' semantics kept: the others' values are summed.
-      const got = await chartRows(r, ageParts.join(" UNION ALL "), { values: ["value"], order: ["part", "series", "year"], links, max: 10 });
+      // A mean age is not additive: the sums of age × stock and of stock are lumped, and "other (n)"
+      // is the stock-weighted mean age of the series it holds (series ranked by those two sums).
+      const got = await chartRows(r, ageParts.join(" UNION ALL "), { values: ["age_stock", "aged_stock"], order: ["part", "series", "year"], links, max: 10 });
       ageKey = got.sortKey;
-      for (const x of got.rows) ages.push({ series: String(x.series), year: Number(x.year), value: Number(x.value), phase: String(x.phase) });
+      for (const x of got.rows) ages.push({ series: String(x.series), year: Number(x.year), value: Number(x.age_stock) / Number(x.aged_stock), phase: String(x.phase) });
     }
     if (ages.length) {
-      const rows = lumpSeries(join(ages, chain, phase, (x) => `${ageKey(x.series)}\u0000${x.phase}`), 10);
+      // At most 10 series here (chartRows lumped them): lumpSeries, which would add mean ages up, is not needed.
+      const rows = join(ages, chain, phase, (x) => `${ageKey(x.series)}\u0000${x.phase}`);
       items.push({
         spec: lines({
           title: `Mean age of the stock by product (${names}, years)`,
-          description: `${describe("Stock-weighted mean age of the stock in use by product (weighted over regions by stock)", rows, "years")}${phaseNote}`,
+          description: `${describe("Stock-weighted mean age of the stock in use by product (weighted over regions by stock; \"other\" is the stock-weighted mean of the products it holds)", rows, "years")}${phaseNote}`,
           rows, yTitle: "mean age (years)", seriesTitle: "product", seam,
         }),
       });
