@@ -53,6 +53,10 @@ export class ByCohortWriter {
   private keys: { names: string[]; types: string[]; values: (string | null)[][] } | null = null;
   /** The part being written by DuckDB while the next one fills. */
   private pending: Promise<void> | null = null;
+  /** The set of columns DuckDB reads in place while it writes the pending part. */
+  private reading: Cols | null = null;
+  /** Parts DuckDB has written and that are not hashed yet. */
+  private readonly written: { entry: OutputFile; file: string }[] = [];
   readonly files: OutputFile[] = [];
   /** Σ over cohorts of stock and outflow per series-year (n × T). */
   readonly sumStock: Float64Array;
@@ -170,10 +174,11 @@ export class ByCohortWriter {
 
   async flush(): Promise<void> {
     if (this.used === 0) return;
-    // One part in DuckDB's hands at a time: the set it reads is free again once it is written.
-    await this.settle();
     const rows = this.used;
     const filled = this.fill;
+    // The part is put in order while DuckDB still writes the previous one (the set it reads is
+    // another), unless that is the set ordering writes into.
+    if (this.reading === this.out) await this.settle();
     const ordered = this.order(filled, rows);
     const src = ordered ?? filled;
     // The part's own series numbers, in output order (each series' rows are contiguous there).
@@ -193,9 +198,10 @@ export class ByCohortWriter {
     // a few per cent larger.
     const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)`;
     const keys = listed ? await this.keyLists(sids) : null;
-    const done = async () => {
-      entry.bytes = statSync(file).size;
-      entry.sha256 = sha256(file);
+    // One part in DuckDB's hands at a time: the set it reads is free again once it is written.
+    await this.settle();
+    const done = (): void => {
+      this.written.push({ entry, file });
     };
     // DuckDB reads the ordered arrays in place and writes the file while the caller fills the
     // next part (into the other set when DuckDB reads the filled one). The query reads every
@@ -204,9 +210,11 @@ export class ByCohortWriter {
       ? scanArrays(this.s, "__cairn_part", `COPY (SELECT ${keys}, ${cols} FROM __cairn_part r) ${to}`,
         ["lsid", "ci", "yi", "inflow", "outflow", "stock"], [src.lsid, src.ci, src.yi, src.inflow, src.outflow, src.stock], rows)
       : null;
+    let pending: Promise<void>;
     if (inPlace) {
       if (src === filled) [this.fill, this.spare] = [this.spare, this.fill];
-      this.pending = inPlace.then(done);
+      this.reading = src;
+      pending = inPlace.then(done);
     } else {
       // Without the native hand-off (or with runs that overlap, or very many series): a table, then the COPY.
       const tmp = `__${this.table}_part`;
@@ -217,22 +225,34 @@ export class ByCohortWriter {
       const query = keys
         ? `SELECT ${keys}, ${cols} FROM ${ident(tmp)} r`
         : `SELECT ${this.selectKeys}, ${cols} FROM ${ident(tmp)} r JOIN ${ident(this.sidTable)} m USING (sid) ORDER BY r.sid, r.ci, r.yi`;
-      this.pending = (async () => {
+      pending = (async () => {
         await this.s.run(`COPY (${query}) ${to}`);
         await this.s.run(`DROP TABLE ${ident(tmp)}`);
-        await done();
+        done();
       })();
     }
-    this.pending.catch(() => {}); // observed by settle()
+    pending.catch(() => {}); // observed by settle()
+    this.pending = pending;
     this.part++;
     this.used = 0;
+    // The parts written before this one are hashed while DuckDB writes it.
+    this.hashWritten();
   }
 
   /** Waits for the part DuckDB is writing; rethrows its error. */
   private async settle(): Promise<void> {
     const p = this.pending;
     this.pending = null;
+    this.reading = null;
     if (p) await p;
+  }
+
+  /** Size and SHA-256 of the parts DuckDB has finished. */
+  private hashWritten(): void {
+    for (const { entry, file } of this.written.splice(0)) {
+      entry.bytes = statSync(file).size;
+      entry.sha256 = sha256(file);
+    }
   }
 
   /**
@@ -243,6 +263,7 @@ export class ByCohortWriter {
   async finish(): Promise<OutputFile[]> {
     await this.flush();
     await this.settle();
+    this.hashWritten();
     const single = path.join(this.runDir, `${this.table}.parquet`);
     if (this.files.length === 0) {
       await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS BIGINT) AS cohort, CAST(NULL AS BIGINT) AS year, CAST(NULL AS DOUBLE) AS inflow,
