@@ -22,6 +22,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <unistd.h>
 
 typedef uint64_t idx_t;
 /* The public result struct of duckdb.h: five deprecated fields, then the internal pointer. */
@@ -299,6 +300,7 @@ extern duckdb_state duckdb_arrow_scan(duckdb_connection connection, const char *
 extern duckdb_state duckdb_query(duckdb_connection connection, const char *query, duckdb_result *out_result);
 extern const char *duckdb_result_error(duckdb_result *result);
 extern void duckdb_destroy_result(duckdb_result *result);
+extern idx_t duckdb_rows_changed(duckdb_result *result);
 
 #define MAXCOLS 64
 typedef struct {
@@ -363,6 +365,7 @@ typedef struct {
   char view[128];
   char *sql;
   char error[512];
+  double changed; /* rows the statement inserted or wrote (duckdb_rows_changed) */
   napi_ref refs[MAXCOLS];
   napi_deferred deferred;
   napi_async_work work;
@@ -378,7 +381,17 @@ static void scan_execute(napi_env env, void *data) {
     return;
   }
   struct ArrowArrayStream st = { src_schema, src_next, stream_error, stream_noop, &j->src };
-  if (duckdb_arrow_scan(conn, j->view, (duckdb_arrow_stream)&st) != 0) {
+  /* The view is made again when a first attempt fails: a fresh connection's first arrow_scan
+   * was seen to fail now and then right after other connections' statements (the C API gives no
+   * message), and the next attempt to succeed. The statement's count of rows is returned, so that
+ * the caller can check that every row went in. */
+  int attempts = 0;
+  while (duckdb_arrow_scan(conn, j->view, (duckdb_arrow_stream)&st) != 0 && ++attempts < 5) {
+    st = (struct ArrowArrayStream){ src_schema, src_next, stream_error, stream_noop, &j->src };
+    j->src.next = 0; /* a failed attempt may have taken batches: start again from the first row */
+    usleep(1000 * attempts);
+  }
+  if (attempts >= 5) {
     snprintf(j->error, sizeof j->error, "cannot scan the arrays as %s", j->view);
   } else {
     duckdb_result res;
@@ -386,6 +399,8 @@ static void scan_execute(napi_env env, void *data) {
     if (duckdb_query(conn, j->sql, &res) != 0) {
       const char *e = duckdb_result_error(&res);
       snprintf(j->error, sizeof j->error, "%s", e ? e : "the query failed");
+    } else {
+      j->changed = (double)duckdb_rows_changed(&res);
     }
     duckdb_destroy_result(&res);
   }
@@ -402,7 +417,7 @@ static void scan_complete(napi_env env, napi_status status, void *data) {
     napi_create_error(env, NULL, msg, &v);
     napi_reject_deferred(env, j->deferred, v);
   } else {
-    napi_get_undefined(env, &v);
+    napi_create_double(env, j->changed, &v);
     napi_resolve_deferred(env, j->deferred, v);
   }
   for (uint32_t c = 0; c < j->src.ncols; c++) napi_delete_reference(env, j->refs[c]);
@@ -416,7 +431,8 @@ static void scan_complete(napi_env env, napi_status status, void *data) {
  * its own, off the JavaScript thread, makes the typed arrays sources[j] (Float64Array: DOUBLE,
  * Int32Array: INTEGER, BigInt64Array: BIGINT) a temporary view `view` with columns names[j]
  * (no copy: DuckDB reads the arrays, `batch` rows at a time, in order) and runs `sql` on it
- * (e.g. a COPY or CREATE TABLE). The arrays must not change until the promise settles.
+ * (e.g. a COPY or INSERT). The arrays must not change until the promise settles, which resolves
+ * to the number of rows the statement wrote or inserted.
  */
 static napi_value scan_arrays(napi_env env, napi_callback_info info) {
   size_t argc = 7;

@@ -22,7 +22,7 @@ interface NativeReader {
   copyColumns(result: duckdb.Result, targets: (Float64Array | Int32Array)[], widths: number[]): number;
   appendColumns(db: duckdb.Database, table: string, sources: (Float64Array | Int32Array)[], widths: number[], rows: number, threads: number): number;
   /** Runs `sql` on a connection of its own, off this thread, with the arrays as the temporary view `view` (read in place, in order). */
-  scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<void>;
+  scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<number>;
 }
 
 let native: NativeReader | null | undefined;
@@ -156,8 +156,9 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
   if (nat && rows > 0) {
     const db = (s.instance as unknown as { db: duckdb.Database }).db;
     const view = "__cairn_arrays";
-    await nat.scanArrays(db, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
+    const inserted = await nat.scanArrays(db, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
       columns.map((_, j) => `c${j}`), columns.map((c) => c.data), rows, SCAN_BATCH);
+    if (inserted !== rows) throw new Error(`hand-off: ${inserted} rows went into ${table} of ${rows}`);
     return;
   }
   const appender = await s.conn.createAppender(table);
@@ -183,7 +184,7 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
 const SCAN_BATCH = 122880;
 
 /**
- * Runs `sql` (a COPY, CREATE TABLE or INSERT … SELECT … FROM `view`) with the typed arrays as the
+ * Runs `sql` (a COPY … TO or INSERT … SELECT … FROM `view`, one row out per row in) with the typed arrays as the
  * temporary view `view` (columns `names`; Float64Array → DOUBLE, Int32Array → INTEGER,
  * BigInt64Array → BIGINT), read in place and in order, on a connection of its own: no copy into
  * a table first. The arrays must not change until the promise settles. Null when the native
@@ -198,5 +199,8 @@ export function scanArrays(s: Session, view: string, sql: string, names: string[
   const nat = nativeReader();
   if (!nat) return null;
   const db = (s.instance as unknown as { db: duckdb.Database }).db;
-  return nat.scanArrays(db, view, sql, names, sources, rows, SCAN_BATCH);
+  // Every row must have gone through: the statement's count (rows written or inserted) is checked.
+  return nat.scanArrays(db, view, sql, names, sources, rows, SCAN_BATCH).then((n) => {
+    if (n !== rows) throw new Error(`hand-off: the statement over ${view} took ${n} rows of ${rows}`);
+  });
 }

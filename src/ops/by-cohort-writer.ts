@@ -9,7 +9,7 @@
  * reads the ordered arrays in place (native hand-off: an Arrow view, in numbered batches, so the
  * order holds on every core) and writes them without ORDER BY or join (the series keys come
  * from a list indexed by the part's own series numbers, written into the statement), so it only
- * encodes and compresses. While DuckDB writes one part, the next one is being filled.
+ * encodes and compresses. DuckDB writes two parts at once while the next one is being filled.
  */
 import { mkdirSync } from "node:fs";
 import path from "node:path";
@@ -18,6 +18,9 @@ import { ident, lit } from "../engine/sql.js";
 import { scanArrays, writeColumns } from "../engine/handoff.js";
 import { sha256, type OutputFile } from "../publish/parquet.js";
 import { renameSync, rmSync, statSync } from "node:fs";
+
+/** Parts DuckDB writes at once (each reads its own set of columns in place). */
+const MAX_IN_FLIGHT = 2;
 
 /** Above this many series in one part, the keys are joined and the part sorted in DuckDB instead of listed in the statement. */
 const MAX_LISTED_SERIES = 20000;
@@ -34,7 +37,7 @@ interface Cols {
   lsid: Int32Array;
 }
 
-function cols(n: number): Cols {
+function newCols(n: number): Cols {
   return {
     sid: new Int32Array(n), ci: new Int32Array(n), yi: new Int32Array(n),
     inflow: new Float64Array(n), outflow: new Float64Array(n), stock: new Float64Array(n), lsid: new Int32Array(n),
@@ -43,18 +46,16 @@ function cols(n: number): Cols {
 
 export class ByCohortWriter {
   private readonly cap: number;
-  /** The set being filled, the other one (free again once DuckDB has written it), and the set rows are ordered into when they arrive out of order. */
+  /** The set being filled, and sets free for reuse (a set DuckDB reads comes back once its part is written). */
   private fill: Cols;
-  private spare: Cols;
-  private out: Cols | null = null;
+  private readonly free: Cols[] = [];
   private used = 0;
   private part = 0;
   /** The key values of every series (as text) and the key columns' types, read once from the series table. */
   private keys: { names: string[]; types: string[]; values: (string | null)[][] } | null = null;
   /** The part being written by DuckDB while the next one fills. */
-  private pending: Promise<void> | null = null;
-  /** The set of columns DuckDB reads in place while it writes the pending part. */
-  private reading: Cols | null = null;
+  /** Parts DuckDB is writing, oldest first, with the set of columns each reads in place. */
+  private readonly inFlight: { done: Promise<void>; set: Cols | null }[] = [];
   /** Parts DuckDB has written and that are not hashed yet. */
   private readonly written: { entry: OutputFile; file: string }[] = [];
   readonly files: OutputFile[] = [];
@@ -76,8 +77,7 @@ export class ByCohortWriter {
     rowsPerPart = 2_000_000,
   ) {
     this.cap = rowsPerPart;
-    this.fill = cols(this.cap);
-    this.spare = cols(this.cap);
+    this.fill = newCols(this.cap);
     this.sumStock = new Float64Array(n * T);
     this.sumOutflow = new Float64Array(n * T);
     mkdirSync(outDir, { recursive: true });
@@ -140,7 +140,7 @@ export class ByCohortWriter {
       const p = idx[k - 1]!, q = idx[k]!;
       if (sid[runs[p]!] === sid[runs[q]!] && ci[runs[p]!] === ci[runs[q]!] && yi[end(p) - 1]! >= yi[runs[q]!]!) return null;
     }
-    const o = (this.out ??= cols(this.cap));
+    const o = this.free.pop() ?? newCols(this.cap);
     let at = 0;
     for (let k = 0; k < R; k++) {
       const r = idx[k]!;
@@ -176,9 +176,7 @@ export class ByCohortWriter {
     if (this.used === 0) return;
     const rows = this.used;
     const filled = this.fill;
-    // The part is put in order while DuckDB still writes the previous one (the set it reads is
-    // another), unless that is the set ordering writes into.
-    if (this.reading === this.out) await this.settle();
+    // The part is put in order while DuckDB still writes the previous ones (they read other sets).
     const ordered = this.order(filled, rows);
     const src = ordered ?? filled;
     // The part's own series numbers, in output order (each series' rows are contiguous there).
@@ -198,30 +196,37 @@ export class ByCohortWriter {
     // a few per cent larger.
     const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)`;
     const keys = listed ? await this.keyLists(sids) : null;
-    // One part in DuckDB's hands at a time: the set it reads is free again once it is written.
-    await this.settle();
+    // At most MAX_IN_FLIGHT parts in DuckDB's hands: a part's encoding does not keep both cores
+    // busy, two at once do (each COPY on a connection of its own, each set read in place).
+    while (this.inFlight.length >= MAX_IN_FLIGHT) await this.settleOne();
     const done = (): void => {
       this.written.push({ entry, file });
     };
     // DuckDB reads the ordered arrays in place and writes the file while the caller fills the
-    // next part (into the other set when DuckDB reads the filled one). The query reads every
+    // next part (into another set when DuckDB reads the filled one). The query reads every
     // column of the view: DuckDB's Arrow scan through its C API passes no projection on.
     const inPlace = keys
       ? scanArrays(this.s, "__cairn_part", `COPY (SELECT ${keys}, ${cols} FROM __cairn_part r) ${to}`,
         ["lsid", "ci", "yi", "inflow", "outflow", "stock"], [src.lsid, src.ci, src.yi, src.inflow, src.outflow, src.stock], rows)
       : null;
     let pending: Promise<void>;
+    let reading: Cols | null = null;
     if (inPlace) {
-      if (src === filled) [this.fill, this.spare] = [this.spare, this.fill];
-      this.reading = src;
+      // DuckDB reads `src` until the part is written; the next part fills another set.
+      reading = src;
+      // (When `src` is an ordered copy, the filled set's rows are in it, and that set fills again.)
+      if (src === filled) this.fill = this.free.pop() ?? newCols(this.cap);
       pending = inPlace.then(done);
     } else {
       // Without the native hand-off (or with runs that overlap, or very many series): a table, then the COPY.
+      // One part at a time on this path: the table and the COPY use the session's own connection.
+      await this.settle();
       const tmp = `__${this.table}_part`;
       await writeColumns(this.s, tmp, [
         { name: "sid", kind: "i32", data: src.sid }, { name: "lsid", kind: "i32", data: src.lsid }, { name: "ci", kind: "i32", data: src.ci }, { name: "yi", kind: "i32", data: src.yi },
         { name: "inflow", kind: "f64", data: src.inflow }, { name: "outflow", kind: "f64", data: src.outflow }, { name: "stock", kind: "f64", data: src.stock },
       ], rows);
+      if (src !== filled) this.free.push(src); // copied into the table: the ordered copy is free again
       const query = keys
         ? `SELECT ${keys}, ${cols} FROM ${ident(tmp)} r`
         : `SELECT ${this.selectKeys}, ${cols} FROM ${ident(tmp)} r JOIN ${ident(this.sidTable)} m USING (sid) ORDER BY r.sid, r.ci, r.yi`;
@@ -231,20 +236,25 @@ export class ByCohortWriter {
         done();
       })();
     }
-    pending.catch(() => {}); // observed by settle()
-    this.pending = pending;
+    pending.catch(() => {}); // observed by settleOne()
+    this.inFlight.push({ done: pending, set: reading });
     this.part++;
     this.used = 0;
     // The parts written before this one are hashed while DuckDB writes it.
     this.hashWritten();
   }
 
-  /** Waits for the part DuckDB is writing; rethrows its error. */
+  /** Waits for the oldest part DuckDB is writing (rethrows its error); its set is free again. */
+  private async settleOne(): Promise<void> {
+    const f = this.inFlight.shift();
+    if (!f) return;
+    await f.done;
+    if (f.set) this.free.push(f.set);
+  }
+
+  /** Waits for every part DuckDB is writing. */
   private async settle(): Promise<void> {
-    const p = this.pending;
-    this.pending = null;
-    this.reading = null;
-    if (p) await p;
+    while (this.inFlight.length) await this.settleOne();
   }
 
   /** Size and SHA-256 of the parts DuckDB has finished. */
