@@ -19,6 +19,14 @@ import { scanArrays, writeColumns } from "../engine/handoff.js";
 import { sha256, type OutputFile } from "../publish/parquet.js";
 import { renameSync, rmSync, statSync } from "node:fs";
 
+/**
+ * How the parts are written (a merge of shards writes the same table with the same options, so
+ * that its bytes are a single run's). zstd at level 1: the parts are the largest output by far
+ * and their encoding is most of the step's time; level 1 took about a fifth less time than the
+ * default level 3 here, for files a few per cent larger.
+ */
+export const PART_OPTIONS = "(FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)";
+
 /** Parts DuckDB writes at once (each reads its own set of columns in place). */
 const MAX_IN_FLIGHT = 2;
 
@@ -191,10 +199,7 @@ export class ByCohortWriter {
     const entry: OutputFile = { table: this.table, file: path.relative(this.runDir, file), rows, bytes: 0, sha256: "" };
     this.files.push(entry);
     const cols = `CAST(r.ci + ${this.y0} AS BIGINT) AS cohort, CAST(r.yi + ${this.y0} AS BIGINT) AS year, r.inflow, r.outflow, r.stock, ${lit(this.unit)} AS unit`;
-    // zstd at level 1: the parts are the largest output by far and their encoding is most of the
-    // step's time; level 1 took about a fifth less time than the default level 3 here, for files
-    // a few per cent larger.
-    const to = `TO ${lit(file)} (FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)`;
+    const to = `TO ${lit(file)} ${PART_OPTIONS}`;
     const keys = listed ? await this.keyLists(sids) : null;
     // At most MAX_IN_FLIGHT parts in DuckDB's hands: a part's encoding does not keep both cores
     // busy, two at once do (each COPY on a connection of its own, each set read in place).
@@ -278,7 +283,7 @@ export class ByCohortWriter {
     if (this.files.length === 0) {
       await this.s.run(`COPY (SELECT ${this.selectKeys}, CAST(NULL AS BIGINT) AS cohort, CAST(NULL AS BIGINT) AS year, CAST(NULL AS DOUBLE) AS inflow,
           CAST(NULL AS DOUBLE) AS outflow, CAST(NULL AS DOUBLE) AS stock, ${lit(this.unit)} AS unit FROM ${ident(this.sidTable)} m WHERE FALSE)
-        TO ${lit(single)} (FORMAT parquet, COMPRESSION zstd)`);
+        TO ${lit(single)} ${PART_OPTIONS}`);
       rmSync(this.outDir, { recursive: true, force: true });
       return [{ table: this.table, file: path.relative(this.runDir, single), rows: 0, bytes: statSync(single).size, sha256: sha256(single) }];
     }

@@ -16,6 +16,7 @@
  * - the other steps run as in any run, on those tables; a step placed in both is checked equal
  *   to the shards' rows.
  */
+import { PART_OPTIONS } from "../ops/by-cohort-writer.js";
 import { existsSync, readFileSync, statSync } from "node:fs";
 import path from "node:path";
 import { InputChanged, PipelineError } from "../errors.js";
@@ -227,7 +228,7 @@ async function writeStreamed(run: Run, name: string, keys: string[]): Promise<Ou
   const s = run.ctx.session;
   const staging = run.rd.staging;
   const total = Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`));
-  const opts = "(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 122880)";
+  const opts = PART_OPTIONS;
   const fileOf = async (abs: string, rows: number): Promise<OutputFile> => ({ table: name, file: path.relative(staging, abs), rows, bytes: statSync(abs).size, sha256: sha256(abs) });
   if (total <= ROWS_PER_PART) {
     const f = path.join(staging, `${name}.parquet`);
