@@ -381,10 +381,10 @@ static void scan_execute(napi_env env, void *data) {
     return;
   }
   struct ArrowArrayStream st = { src_schema, src_next, stream_error, stream_noop, &j->src };
-  /* The view is made again when a first attempt fails: a fresh connection's first arrow_scan
-   * was seen to fail now and then right after other connections' statements (the C API gives no
-   * message), and the next attempt to succeed. The statement's count of rows is returned, so that
- * the caller can check that every row went in. */
+  /* The view is made again when an attempt fails (the C API gives no message). Views made by
+   * arrow_scan are seen by other connections: every scan must have a view name of its own (the
+   * caller makes them unique), or one statement reads another's arrays. The statement's count of
+   * rows is returned, so that the caller can check that every row went in. */
   int attempts = 0;
   while (duckdb_arrow_scan(conn, j->view, (duckdb_arrow_stream)&st) != 0 && ++attempts < 5) {
     st = (struct ArrowArrayStream){ src_schema, src_next, stream_error, stream_noop, &j->src };
@@ -402,6 +402,12 @@ static void scan_execute(napi_env env, void *data) {
     } else {
       j->changed = (double)duckdb_rows_changed(&res);
     }
+    duckdb_destroy_result(&res);
+    /* The view is not private to this connection: drop it (its stream lives on this stack). */
+    char drop[200];
+    snprintf(drop, sizeof drop, "DROP VIEW IF EXISTS \"%s\"", j->view);
+    memset(&res, 0, sizeof res);
+    duckdb_query(conn, drop, &res);
     duckdb_destroy_result(&res);
   }
   duckdb_disconnect(&conn);

@@ -163,8 +163,8 @@ function initialUnits(init: InitialStock, T: number, withLeaving = false): { uni
 }
 
 /**
- * The initial stock's cohorts, one series at a time: for each age a with stock, rows for every
- * model year (cohort index −1 − a), with the stock left and the outflow of that year.
+ * The initial stock's cohorts, one series at a time: for each age a with stock (oldest first),
+ * rows for every model year (cohort index −1 − a), with the stock left and the outflow of that year.
  */
 export function* initialCohorts(init: InitialStock, n: number, T: number): Generator<{ s: number; cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array }> {
   const { A } = init;
@@ -179,7 +179,8 @@ export function* initialCohorts(init: InitialStock, n: number, T: number): Gener
     const cohort = new Int32Array(rows), year = new Int32Array(rows);
     const stock = new Float64Array(rows), outflow = new Float64Array(rows), inflow = new Float64Array(rows);
     let k = 0;
-    for (const a of ages) {
+    // Oldest age first: rows in (cohort, year) order, as the cohort-resolved table is sorted.
+    for (const a of ages.reverse()) {
       const q = init.byAge ? init.byAge[s * A + a]! : steady![a]! * init.total[s]!;
       let prev = q;
       for (let t = 0; t < T; t++) {
@@ -422,7 +423,15 @@ export function composition(g: CohortGroup, inflow: Float64Array, n: number, con
  * arithmetic): copy what must outlive the iteration.
  */
 export function* byCohort(g: CohortGroup, inflow: Float64Array, n: number): Generator<{ s: number; cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array }> {
-  const T = g.T;
+  const rows = byCohortRows(g.T);
+  for (let s = 0; s < n; s++) {
+    fillByCohort(g, inflow.subarray(s * g.T, (s + 1) * g.T), rows);
+    yield { s, ...rows };
+  }
+}
+
+/** Buffers for one series' cohort-resolved rows over T years (cohort-major, t ≥ c; cohort and year filled once). */
+export function byCohortRows(T: number): { cohort: Int32Array; year: Int32Array; stock: Float64Array; outflow: Float64Array; inflow: Float64Array } {
   const rows = (T * (T + 1)) / 2;
   const cohort = new Int32Array(rows);
   const year = new Int32Array(rows);
@@ -431,20 +440,21 @@ export function* byCohort(g: CohortGroup, inflow: Float64Array, n: number): Gene
     cohort[k] = c;
     year[k++] = t;
   }
-  const stock = new Float64Array(rows);
-  const outflow = new Float64Array(rows);
-  const inf = new Float64Array(rows);
-  for (let s = 0; s < n; s++) {
-    let j = 0;
-    for (let c = 0; c < T; c++) {
-      const I = inflow[s * T + c]!;
-      for (let t = c; t < T; t++) {
-        stock[j] = I * g.S[c * T + t]!;
-        outflow[j] = I * g.P[c * T + t]!;
-        inf[j++] = t === c ? I : 0;
-      }
+  return { cohort, year, stock: new Float64Array(rows), outflow: new Float64Array(rows), inflow: new Float64Array(rows) };
+}
+
+/** One series' cohort-resolved stock, outflow and inflow (its T inflows `I`) into `rows` (from byCohortRows). */
+export function fillByCohort(g: CohortGroup, I: Float64Array, rows: { stock: Float64Array; outflow: Float64Array; inflow: Float64Array }): void {
+  const T = g.T;
+  const { stock, outflow, inflow } = rows;
+  let j = 0;
+  for (let c = 0; c < T; c++) {
+    const x = I[c]!;
+    for (let t = c; t < T; t++) {
+      stock[j] = x * g.S[c * T + t]!;
+      outflow[j] = x * g.P[c * T + t]!;
+      inflow[j++] = t === c ? x : 0;
     }
-    yield { s, cohort, year, stock, outflow, inflow: inf };
   }
 }
 

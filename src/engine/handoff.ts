@@ -155,7 +155,7 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
   const nat = nativeReader();
   if (nat && rows > 0) {
     const db = (s.instance as unknown as { db: duckdb.Database }).db;
-    const view = "__cairn_arrays";
+    const view = uniqueView("__cairn_arrays");
     const inserted = await nat.scanArrays(db, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
       columns.map((_, j) => `c${j}`), columns.map((c) => c.data), rows, SCAN_BATCH);
     if (inserted !== rows) throw new Error(`hand-off: ${inserted} rows went into ${table} of ${rows}`);
@@ -178,6 +178,15 @@ export async function writeColumns(s: Session, table: string, columns: readonly 
     duckdb.append_data_chunk(rawAppender, chunk);
   }
   appender.closeSync();
+}
+
+/**
+ * A view name no other scan uses: DuckDB's views of Arrow streams are seen by every connection,
+ * so two scans at once under one name would read each other's arrays.
+ */
+let views = 0;
+export function uniqueView(prefix: string): string {
+  return `${prefix}_${process.pid}_${++views}`;
 }
 
 /** Rows per batch of an in-place scan: DuckDB's row group size, so that each batch fills one. */

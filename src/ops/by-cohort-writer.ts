@@ -15,7 +15,7 @@ import { mkdirSync } from "node:fs";
 import path from "node:path";
 import type { Session } from "../engine/session.js";
 import { ident, lit } from "../engine/sql.js";
-import { scanArrays, writeColumns } from "../engine/handoff.js";
+import { scanArrays, uniqueView, writeColumns } from "../engine/handoff.js";
 import { sha256, type OutputFile } from "../publish/parquet.js";
 import { renameSync, rmSync, statSync } from "node:fs";
 
@@ -26,6 +26,36 @@ import { renameSync, rmSync, statSync } from "node:fs";
  * default level 3 here, for files a few per cent larger.
  */
 export const PART_OPTIONS = "(FORMAT parquet, COMPRESSION zstd, COMPRESSION_LEVEL 1, ROW_GROUP_SIZE 122880)";
+
+/** Rows per part at the most: 2,000,000, or CAIRN_BY_COHORT_PART_ROWS (for tests; a merge of shards must see the same). */
+export function partRows(): number {
+  const v = Number(process.env.CAIRN_BY_COHORT_PART_ROWS ?? 2_000_000);
+  return Number.isInteger(v) && v > 0 ? v : 2_000_000;
+}
+
+/**
+ * The parts' sizes for additions of `adds` rows in turn, cut as the writer cuts them (add and
+ * flush below): a part is written when the next addition does not fit in it, and an addition
+ * larger than a part goes into parts of its own. A merge of shards cuts its table with it.
+ */
+export function partSizes(adds: Iterable<number>, cap: number): number[] {
+  const parts: number[] = [];
+  let used = 0;
+  const add = (rows: number): void => {
+    if (used + rows > cap && used > 0) {
+      parts.push(used);
+      used = 0;
+    }
+    if (rows > cap) {
+      for (let at = 0; at < rows; at += cap) add(Math.min(cap, rows - at));
+      return;
+    }
+    used += rows;
+  };
+  for (const r of adds) add(r);
+  if (used > 0) parts.push(used);
+  return parts;
+}
 
 /** Parts DuckDB writes at once (each reads its own set of columns in place). */
 const MAX_IN_FLIGHT = 2;
@@ -82,7 +112,7 @@ export class ByCohortWriter {
     private readonly unit: string,
     private readonly T: number,
     n: number,
-    rowsPerPart = 2_000_000,
+    rowsPerPart = partRows(),
   ) {
     this.cap = rowsPerPart;
     this.fill = newCols(this.cap);
@@ -210,8 +240,9 @@ export class ByCohortWriter {
     // DuckDB reads the ordered arrays in place and writes the file while the caller fills the
     // next part (into another set when DuckDB reads the filled one). The query reads every
     // column of the view: DuckDB's Arrow scan through its C API passes no projection on.
+    const view = uniqueView("__cairn_part");
     const inPlace = keys
-      ? scanArrays(this.s, "__cairn_part", `COPY (SELECT ${keys}, ${cols} FROM __cairn_part r) ${to}`,
+      ? scanArrays(this.s, view, `COPY (SELECT ${keys}, ${cols} FROM ${view} r) ${to}`,
         ["lsid", "ci", "yi", "inflow", "outflow", "stock"], [src.lsid, src.ci, src.yi, src.inflow, src.outflow, src.stock], rows)
       : null;
     let pending: Promise<void>;

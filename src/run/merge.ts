@@ -16,7 +16,7 @@
  * - the other steps run as in any run, on those tables; a step placed in both is checked equal
  *   to the shards' rows.
  */
-import { PART_OPTIONS } from "../ops/by-cohort-writer.js";
+import { PART_OPTIONS, partRows, partSizes } from "../ops/by-cohort-writer.js";
 import { existsSync, readFileSync, statSync } from "node:fs";
 import path from "node:path";
 import { InputChanged, PipelineError } from "../errors.js";
@@ -220,30 +220,39 @@ function filesOf(run: Run, sh: ShardDir, table: string): string[] {
 
 const publishOf = (node: StepNode) => (node.step.publish === undefined || node.step.publish === true ? {} : node.step.publish === false ? false : node.step.publish);
 
-/** Rows per part of a streamed table, as the cohort-resolved writer cuts them (src/ops/by-cohort-writer.ts). */
-const ROWS_PER_PART = 2_000_000;
-
-/** A streamed table's files at the merge, in key order: one file up to ROWS_PER_PART rows, else a folder of parts. */
+/**
+ * A streamed (cohort-resolved) table's files at the merge: the table in key order, cut into parts
+ * exactly where the writer of a single run cuts it (src/ops/by-cohort-writer.ts, partSizes): the
+ * writer takes the series in key order, each series' cohorts in place (before its first model
+ * year) and then its model cohorts, as two additions.
+ */
 async function writeStreamed(run: Run, name: string, keys: string[]): Promise<OutputFile[]> {
   const s = run.ctx.session;
   const staging = run.rd.staging;
-  const total = Number(await s.scalar(`SELECT count(*) FROM ${ident(name)}`));
   const opts = PART_OPTIONS;
   const fileOf = async (abs: string, rows: number): Promise<OutputFile> => ({ table: name, file: path.relative(staging, abs), rows, bytes: statSync(abs).size, sha256: sha256(abs) });
-  if (total <= ROWS_PER_PART) {
+  const series = keys.filter((k) => k !== "cohort" && k !== "year");
+  const adds: number[] = [];
+  const first = `(SELECT min(year) FROM ${ident(name)})`;
+  for (const r of await s.all(`SELECT count(*) FILTER (WHERE cohort < ${first}) AS i, count(*) FILTER (WHERE cohort >= ${first}) AS m
+      FROM ${ident(name)} ${series.length ? `GROUP BY ${idents(series)} ORDER BY ${idents(series)}` : ""}`)) adds.push(Number(r.i), Number(r.m));
+  const parts = partSizes(adds, partRows());
+  if (parts.length <= 1) {
     const f = path.join(staging, `${name}.parquet`);
     await s.run(`COPY (SELECT * FROM ${ident(name)} ORDER BY ${idents(keys)}) TO ${lit(f)} ${opts}`);
-    return [await fileOf(f, total)];
+    return [await fileOf(f, parts[0] ?? 0)];
   }
   const sorted = `__cairn_sorted_${name}`;
   await s.run(`CREATE OR REPLACE TEMP TABLE ${ident(sorted)} AS SELECT *, row_number() OVER (ORDER BY ${idents(keys)}) - 1 AS __rn FROM ${ident(name)}`);
   const { mkdirSync } = await import("node:fs");
   mkdirSync(path.join(staging, name), { recursive: true });
   const out: OutputFile[] = [];
-  for (let p = 0; p * ROWS_PER_PART < total; p++) {
+  let from = 0;
+  for (const [p, rows] of parts.entries()) {
     const f = path.join(staging, name, `part-${String(p).padStart(5, "0")}.parquet`);
-    await s.run(`COPY (SELECT * EXCLUDE (__rn) FROM ${ident(sorted)} WHERE __rn >= ${p * ROWS_PER_PART} AND __rn < ${(p + 1) * ROWS_PER_PART} ORDER BY __rn) TO ${lit(f)} ${opts}`);
-    out.push(await fileOf(f, Math.min(ROWS_PER_PART, total - p * ROWS_PER_PART)));
+    await s.run(`COPY (SELECT * EXCLUDE (__rn) FROM ${ident(sorted)} WHERE __rn >= ${from} AND __rn < ${from + rows} ORDER BY __rn) TO ${lit(f)} ${opts}`);
+    out.push(await fileOf(f, rows));
+    from += rows;
   }
   await s.run(`DROP TABLE ${ident(sorted)}`);
   return out;

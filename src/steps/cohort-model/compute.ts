@@ -9,7 +9,7 @@ import { DataError } from "../../errors.js";
 import { ident } from "../../engine/sql.js";
 import {
   CohortGroup, composition, initialAmounts, initialCohorts, initialContribution, inflowDriven, stockDriven,
-  byCohort, type InitialStock, type ModelResult,
+  byCohortRows, fillByCohort, type InitialStock, type ModelResult,
 } from "../../cohort/index.js";
 import { CohortPool, recycle, runTasks, taskFor } from "../../cohort/pool.js";
 import { ByCohortWriter } from "../../ops/by-cohort-writer.js";
@@ -133,22 +133,42 @@ export async function compute(ctx: StepContext, o: O, inp: Inputs, groups: Group
     if (r.unmet && res.unmet) scatter(res.unmet, r.unmet, T);
     if (r.initialTooOld) g.sids.forEach((sid, j) => (res.tooOld[sid] = r.initialTooOld![j]!));
     if (res.mat) composeGroup(o, inp, x, A, materials, content, r, res, state);
-    if (bcw) {
-      // The cohorts in place (entered before the first model year), then the model cohorts.
-      if (x.initSpec) for (const chunk of initialCohorts(x.initSpec, gn, T)) {
-        await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
-      }
-      for (const chunk of byCohort(group, r.inflow, gn)) {
-        await bcw.add(g.sids[chunk.s]!, chunk.cohort, chunk.year, chunk.inflow, chunk.outflow, chunk.stock);
-        tick(done + chunk.s + 1);
-      }
-    }
     if (usePool) recycle(r); // the arena keeps the memory for the next group
     done += gn;
-    tick(done);
+    if (!bcw) tick(done);
   }
+  if (bcw) await writeByCohort(bcw, prepared, res.inflow, T, n, tick);
   if (state) ctx.carry.keep(state);
   return res;
+}
+
+/**
+ * The cohort-resolved rows, series by series in the order of their keys (sid), whatever lifetime
+ * group each is in: each series' cohorts in place (entered before the first model year), then
+ * its model cohorts. The writer's parts are then the table sorted by its keys, cut where the
+ * next series' rows do not fit, which a merge of shards can cut the same way.
+ */
+async function writeByCohort(bcw: ByCohortWriter, prepared: { g: Group; group: CohortGroup; gn: number; initSpec: InitialStock | null }[],
+  inflow: Float64Array, T: number, n: number, tick: (done: number) => void): Promise<void> {
+  const rows = byCohortRows(T);
+  const at = new Int32Array(n).fill(-1); // the series' group
+  prepared.forEach((x, gi) => x.g.sids.forEach((sid) => (at[sid] = gi)));
+  // The cohorts in place come from one generator per group, taken in step (a group's series are in sid order).
+  const init = prepared.map((x) => (x.initSpec ? initialCohorts(x.initSpec, x.gn, T) : null));
+  for (let sid = 0; sid < n; sid++) {
+    const gi = at[sid]!;
+    if (gi < 0) continue;
+    const x = prepared[gi]!;
+    const gen = init[gi];
+    if (gen) {
+      const chunk = gen.next();
+      if (chunk.done || x.g.sids[chunk.value.s] !== sid) throw new Error(`cohort model: cohorts in place out of step for series ${sid}`);
+      await bcw.add(sid, chunk.value.cohort, chunk.value.year, chunk.value.inflow, chunk.value.outflow, chunk.value.stock);
+    }
+    fillByCohort(x.group, inflow.subarray(sid * T, (sid + 1) * T), rows);
+    await bcw.add(sid, rows.cohort, rows.year, rows.inflow, rows.outflow, rows.stock);
+    if (sid % 64 === 63 || sid === n - 1) tick(sid + 1);
+  }
 }
 
 /** Material flows of one group: the model run on inflow × content, the cohorts in place with their own content. */
