@@ -1,8 +1,8 @@
 /**
  * Cohort-resolved output, streamed: rows (series × cohort × year) are buffered as typed
  * arrays up to a fixed size, put in order (series, cohort, year) in JavaScript and written as
- * one Parquet part file into the run's staging directory. Memory stays bounded whatever the number of series; per series-year
- * sums are kept for the audit against the totals.
+ * one Parquet part file into the run's staging directory. Memory stays bounded whatever the
+ * number of series; per series-year sums are kept for the audit against the totals.
  *
  * Where the time goes (README, "Performance"): a part's rows arrive as runs of one series and
  * cohort (years ascending), so ordering them is a sort of those runs, not of rows; DuckDB then
@@ -91,7 +91,6 @@ export class ByCohortWriter {
   private part = 0;
   /** The key values of every series (as text) and the key columns' types, read once from the series table. */
   private keys: { names: string[]; types: string[]; values: (string | null)[][] } | null = null;
-  /** The part being written by DuckDB while the next one fills. */
   /** Parts DuckDB is writing, oldest first, with the set of columns each reads in place. */
   private readonly inFlight: { done: Promise<void>; set: Cols | null }[] = [];
   /** Parts DuckDB has written and that are not hashed yet. */
