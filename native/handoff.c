@@ -1,28 +1,26 @@
 /*
  * cairn's native hand-off: copies the columns of a materialised DuckDB result into typed
  * arrays, chunk by chunk, with one memcpy per chunk and column and no JavaScript object per
- * chunk; and appends typed arrays to a table from several threads at once, each on its own
- * connection and appender. Built by scripts/build-native.mjs (optional: without it the
- * hand-off uses the bindings' per-chunk calls). It links the libduckdb.so that
- * @duckdb/node-bindings loads and uses the handles the bindings hold in N-API externals: a
- * duckdb_result*, and a pointer to a struct whose first field is the duckdb_database (the
- * layout of @duckdb/node-bindings 1.5; scripts/build-native.mjs records the version it built
- * against, and src/engine/handoff.ts does not load this library for another one).
+ * chunk; and lets DuckDB read typed arrays in place, as an Arrow stream, to run a statement over
+ * them (an INSERT or a COPY) on a connection of its own, off the JavaScript thread. Built by
+ * scripts/build-native.mjs (optional: without it the hand-off uses the bindings' per-chunk
+ * calls). It links the libduckdb.so that @duckdb/node-bindings loads and uses the handles the
+ * bindings hold in N-API externals: a duckdb_result*, and a pointer to a struct whose first
+ * field is the duckdb_database (the layout of @duckdb/node-bindings 1.5;
+ * scripts/build-native.mjs records the version it built against, and src/engine/handoff.ts does
+ * not load this library for another one).
  *
  * DuckDB C API used (duckdb.h, DuckDB 1.x): duckdb_result_chunk_count, duckdb_result_get_chunk,
  * duckdb_data_chunk_get_size, duckdb_data_chunk_get_vector, duckdb_vector_get_data,
  * duckdb_vector_get_validity, duckdb_destroy_data_chunk, duckdb_connect, duckdb_disconnect,
- * duckdb_appender_create, duckdb_append_data_chunk, duckdb_appender_error,
- * duckdb_appender_destroy, duckdb_create_logical_type, duckdb_destroy_logical_type,
- * duckdb_create_data_chunk, duckdb_data_chunk_set_size.
+ * duckdb_arrow_scan, duckdb_query, duckdb_result_error, duckdb_rows_changed,
+ * duckdb_destroy_result.
  */
 #include <node_api.h>
-#include <pthread.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
-#include <unistd.h>
 
 typedef uint64_t idx_t;
 /* The public result struct of duckdb.h: five deprecated fields, then the internal pointer. */
@@ -47,20 +45,9 @@ extern void duckdb_destroy_data_chunk(duckdb_data_chunk *chunk);
 
 typedef void *duckdb_database;
 typedef void *duckdb_connection;
-typedef void *duckdb_appender;
-typedef void *duckdb_logical_type;
 typedef int duckdb_state; /* DuckDBSuccess = 0 */
-enum { TYPE_INTEGER = 4, TYPE_DOUBLE = 11 }; /* duckdb_type values */
 extern duckdb_state duckdb_connect(duckdb_database database, duckdb_connection *out);
 extern void duckdb_disconnect(duckdb_connection *connection);
-extern duckdb_state duckdb_appender_create(duckdb_connection connection, const char *schema, const char *table, duckdb_appender *out);
-extern duckdb_state duckdb_append_data_chunk(duckdb_appender appender, duckdb_data_chunk chunk);
-extern const char *duckdb_appender_error(duckdb_appender appender);
-extern duckdb_state duckdb_appender_destroy(duckdb_appender *appender);
-extern duckdb_logical_type duckdb_create_logical_type(int type);
-extern void duckdb_destroy_logical_type(duckdb_logical_type *type);
-extern duckdb_data_chunk duckdb_create_data_chunk(duckdb_logical_type *types, idx_t column_count);
-extern void duckdb_data_chunk_set_size(duckdb_data_chunk chunk, idx_t size);
 
 static napi_value fail(napi_env env, const char *msg) {
   napi_throw_error(env, NULL, msg);
@@ -152,108 +139,6 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
   }
   napi_value out;
   napi_create_double(env, (double)row, &out);
-  return out;
-}
-
-#define CHUNK 2048 /* DuckDB's vector size */
-
-typedef struct {
-  duckdb_database db;
-  const char *table;
-  uint32_t ncols;
-  uint8_t *const *base;
-  const uint32_t *width;
-  idx_t from, to;
-  char error[256];
-} append_job;
-
-/* Appends rows from..to of every column on a connection of its own. */
-static void *append_part(void *arg) {
-  append_job *j = (append_job *)arg;
-  duckdb_connection conn = NULL;
-  duckdb_appender app = NULL;
-  duckdb_logical_type types[64];
-  duckdb_data_chunk ch = NULL;
-  j->error[0] = 0;
-  if (duckdb_connect(j->db, &conn) != 0) {
-    snprintf(j->error, sizeof j->error, "cannot open a connection");
-    return NULL;
-  }
-  if (duckdb_appender_create(conn, NULL, j->table, &app) != 0) {
-    snprintf(j->error, sizeof j->error, "cannot append to %s: %s", j->table, app ? duckdb_appender_error(app) : "no appender");
-    if (app) duckdb_appender_destroy(&app);
-    duckdb_disconnect(&conn);
-    return NULL;
-  }
-  for (uint32_t c = 0; c < j->ncols; c++) types[c] = duckdb_create_logical_type(j->width[c] == 8 ? TYPE_DOUBLE : TYPE_INTEGER);
-  ch = duckdb_create_data_chunk(types, j->ncols);
-  for (idx_t off = j->from; off < j->to && !j->error[0]; off += CHUNK) {
-    idx_t n = j->to - off < CHUNK ? j->to - off : CHUNK;
-    for (uint32_t c = 0; c < j->ncols; c++) {
-      memcpy(duckdb_vector_get_data(duckdb_data_chunk_get_vector(ch, c)), j->base[c] + off * j->width[c], n * j->width[c]);
-    }
-    duckdb_data_chunk_set_size(ch, n);
-    if (duckdb_append_data_chunk(app, ch) != 0) snprintf(j->error, sizeof j->error, "append to %s: %s", j->table, duckdb_appender_error(app));
-  }
-  duckdb_destroy_data_chunk(&ch);
-  for (uint32_t c = 0; c < j->ncols; c++) duckdb_destroy_logical_type(&types[c]);
-  if (duckdb_appender_destroy(&app) != 0 && !j->error[0]) snprintf(j->error, sizeof j->error, "closing the appender of %s failed", j->table);
-  duckdb_disconnect(&conn);
-  return NULL;
-}
-
-/*
- * appendColumns(database, table, sources, widths, rows, threads): appends `rows` rows, column j
- * from the typed array sources[j] (widths[j] = 8: DOUBLE, 4: INTEGER), to an existing table,
- * split in `threads` row ranges appended at once. Row order across ranges is not kept.
- */
-static napi_value append_columns(napi_env env, napi_callback_info info) {
-  size_t argc = 6;
-  napi_value argv[6];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 6) return fail(env, "appendColumns(database, table, sources, widths, rows, threads)");
-  void *holder = NULL;
-  if (napi_get_value_external(env, argv[0], &holder) != napi_ok || !holder) return fail(env, "appendColumns: not a DuckDB database");
-  duckdb_database db = *(duckdb_database *)holder;
-  if (!db) return fail(env, "appendColumns: the database is closed");
-  char table[512];
-  size_t tlen = 0;
-  if (napi_get_value_string_utf8(env, argv[1], table, sizeof table, &tlen) != napi_ok || tlen >= sizeof table - 1) return fail(env, "appendColumns: table name");
-  uint32_t ncols = 0;
-  napi_get_array_length(env, argv[2], &ncols);
-  if (ncols == 0 || ncols > 64) return fail(env, "appendColumns: 1 to 64 columns");
-  uint8_t *base[64];
-  uint32_t width[64];
-  size_t length[64];
-  double rowsD = 0;
-  uint32_t threads = 1;
-  napi_get_value_double(env, argv[4], &rowsD);
-  napi_get_value_uint32(env, argv[5], &threads);
-  idx_t rows = (idx_t)rowsD;
-  const char *bad = typed_columns(env, argv[2], argv[3], ncols, base, width, length);
-  if (bad) {
-    char msg[128];
-    snprintf(msg, sizeof msg, "appendColumns: sources: %s", bad);
-    return fail(env, msg);
-  }
-  for (uint32_t c = 0; c < ncols; c++) if (length[c] < rows) return fail(env, "appendColumns: a source is shorter than the row count");
-  if (threads < 1) threads = 1;
-  if (threads > 16) threads = 16;
-  if (rows < (idx_t)threads * 16 * CHUNK) threads = 1; /* small tables: one appender */
-  append_job jobs[16];
-  pthread_t tid[16];
-  idx_t per = (rows + threads - 1) / threads;
-  per = (per + CHUNK - 1) / CHUNK * CHUNK;
-  for (uint32_t k = 0; k < threads; k++) {
-    idx_t from = k * per < rows ? k * per : rows;
-    idx_t to = from + per < rows ? from + per : rows;
-    jobs[k] = (append_job){ db, table, ncols, base, width, from, to, { 0 } };
-  }
-  for (uint32_t k = 1; k < threads; k++) pthread_create(&tid[k], NULL, append_part, &jobs[k]);
-  append_part(&jobs[0]);
-  for (uint32_t k = 1; k < threads; k++) pthread_join(tid[k], NULL);
-  for (uint32_t k = 0; k < threads; k++) if (jobs[k].error[0]) return fail(env, jobs[k].error);
-  napi_value out;
-  napi_create_double(env, (double)rows, &out);
   return out;
 }
 
@@ -381,17 +266,10 @@ static void scan_execute(napi_env env, void *data) {
     return;
   }
   struct ArrowArrayStream st = { src_schema, src_next, stream_error, stream_noop, &j->src };
-  /* The view is made again when an attempt fails (the C API gives no message). Views made by
-   * arrow_scan are seen by other connections: every scan must have a view name of its own (the
-   * caller makes them unique), or one statement reads another's arrays. The statement's count of
-   * rows is returned, so that the caller can check that every row went in. */
-  int attempts = 0;
-  while (duckdb_arrow_scan(conn, j->view, (duckdb_arrow_stream)&st) != 0 && ++attempts < 5) {
-    st = (struct ArrowArrayStream){ src_schema, src_next, stream_error, stream_noop, &j->src };
-    j->src.next = 0; /* a failed attempt may have taken batches: start again from the first row */
-    usleep(1000 * attempts);
-  }
-  if (attempts >= 5) {
+  /* Views made by arrow_scan are seen by other connections: every scan must have a view name of
+   * its own (the caller makes them unique), or one statement reads another's arrays. The
+   * statement's count of rows is returned, so that the caller can check that every row went in. */
+  if (duckdb_arrow_scan(conn, j->view, (duckdb_arrow_stream)&st) != 0) {
     snprintf(j->error, sizeof j->error, "cannot scan the arrays as %s", j->view);
   } else {
     duckdb_result res;
@@ -435,7 +313,7 @@ static void scan_complete(napi_env env, napi_status status, void *data) {
 /*
  * scanArrays(database, view, sql, names, sources, rows, batch) → Promise: on a connection of
  * its own, off the JavaScript thread, makes the typed arrays sources[j] (Float64Array: DOUBLE,
- * Int32Array: INTEGER, BigInt64Array: BIGINT) a temporary view `view` with columns names[j]
+ * Int32Array: INTEGER, BigInt64Array: BIGINT) the view `view` with columns names[j]
  * (no copy: DuckDB reads the arrays, `batch` rows at a time, in order) and runs `sql` on it
  * (e.g. a COPY or INSERT). The arrays must not change until the promise settles, which resolves
  * to the number of rows the statement wrote or inserted.
@@ -509,8 +387,6 @@ NAPI_MODULE_INIT(/* napi_env env, napi_value exports */) {
   napi_value fn;
   napi_create_function(env, "copyColumns", NAPI_AUTO_LENGTH, copy_columns, NULL, &fn);
   napi_set_named_property(env, exports, "copyColumns", fn);
-  napi_create_function(env, "appendColumns", NAPI_AUTO_LENGTH, append_columns, NULL, &fn);
-  napi_set_named_property(env, exports, "appendColumns", fn);
   napi_create_function(env, "scanArrays", NAPI_AUTO_LENGTH, scan_arrays, NULL, &fn);
   napi_set_named_property(env, exports, "scanArrays", fn);
   return exports;

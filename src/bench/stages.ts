@@ -240,13 +240,13 @@ export async function handoffStage(values: number, runs: number): Promise<StageR
   const v = new Float64Array(values).map((_, i) => i * 0.25);
   // Row order not kept (as the pipeline writes its result tables, read back with ORDER BY):
   // with the native hand-off, row ranges are appended from every core at once.
-  const writeT = await timed(runs, () => writeColumns(s, "dst", [{ name: "a", kind: "i32", data: a }, { name: "b", kind: "i32", data: b }, { name: "v", kind: "f64", data: v }], values, { keepOrder: false }),
+  const writeT = await timed(runs, () => writeColumns(s, "dst", [{ name: "a", kind: "i32", data: a }, { name: "b", kind: "i32", data: b }, { name: "v", kind: "f64", data: v }], values),
     (i, t) => say(`hand-off write run ${i}/${runs}: ${t.toFixed(2)} s`));
   const [chk] = await s.all("SELECT count(*) AS n, sum(a) AS sa, sum(b) AS sb, sum(v) AS sv FROM dst");
   const sum = (x: ArrayLike<number>) => { let t = 0; for (let i = 0; i < x.length; i++) t += x[i]!; return t; };
   if (Number(chk!.n) !== values || Number(chk!.sa) !== sum(a) || Number(chk!.sb) !== sum(b) || Number(chk!.sv) !== sum(v)) throw new Error("hand-off write mismatch");
   s.close();
-  return { stage: "handoff", handoff_values: values, handoff_native: nativeReader() ? "native reader and parallel append" : "bindings' calls", handoff_read_runs_s: readT, handoff_read_fresh_s: fresh[0]!, handoff_write_runs_s: writeT, handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
+  return { stage: "handoff", handoff_values: values, handoff_native: nativeReader() ? "native reader and in-place scans" : "bindings' calls", handoff_read_runs_s: readT, handoff_read_fresh_s: fresh[0]!, handoff_write_runs_s: writeT, handoff_read_values_per_s: values / median(readT), handoff_write_rows_per_s: values / median(writeT) };
 }
 
 /** Cohort-resolved output through the pipeline step: inflow for S series × Y years, by_cohort: true. */

@@ -56,16 +56,12 @@ export function nativeKernels(): NativeKernels | null {
  * a large array. Only for arrays of at least 4 MiB; smaller ones are plain.
  */
 export function largeFloat64Array(n: number): Float64Array {
-  const a = new Float64Array(n);
-  if (n * 8 >= 4 << 20) library()?.adviseHugePages(a);
-  return a;
+  return advised(new Float64Array(n));
 }
 export function largeInt32Array(n: number): Int32Array {
-  const a = new Int32Array(n);
-  if (n * 4 >= 4 << 20) library()?.adviseHugePages(a);
-  return a;
+  return advised(new Int32Array(n));
 }
-/** Huge pages for an existing array's untouched memory (see largeFloat64Array); 0 where nothing was advised. */
-export function adviseHugePages(a: ArrayBufferView): number {
-  return a.byteLength >= 4 << 20 ? library()?.adviseHugePages(a) ?? 0 : 0;
+function advised<A extends ArrayBufferView>(a: A): A {
+  if (a.byteLength >= 4 << 20) library()?.adviseHugePages(a);
+  return a;
 }

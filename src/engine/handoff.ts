@@ -20,8 +20,7 @@ const BYTES: Record<ColumnKind, number> = { f64: 8, i32: 4 };
 
 interface NativeReader {
   copyColumns(result: duckdb.Result, targets: (Float64Array | Int32Array)[], widths: number[]): number;
-  appendColumns(db: duckdb.Database, table: string, sources: (Float64Array | Int32Array)[], widths: number[], rows: number, threads: number): number;
-  /** Runs `sql` on a connection of its own, off this thread, with the arrays as the temporary view `view` (read in place, in order). */
+  /** Runs `sql` on a connection of its own, off this thread, with the arrays as the view `view` (read in place, in order); resolves to the statement's row count. */
   scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<number>;
 }
 
@@ -73,7 +72,7 @@ function allValid(vec: duckdb.Vector, n: number): boolean {
 export class ReadBuffers {
   private readonly kept: (Float64Array | Int32Array | undefined)[] = [];
 
-  /** An array of `rows` elements of `kind` for column `j`: a view of the kept one when it is large enough. */
+  /** An array of `rows` elements of `kind` for column `j`: a view of the kept one when it is large enough, else a new one (in huge pages where the system allows: its first touch, the copy, is most of the cost). */
   take(j: number, kind: ColumnKind, rows: number): Float64Array | Int32Array {
     const k = this.kept[j];
     if (k && k.length >= rows && (kind === "f64") === k instanceof Float64Array) return k.subarray(0, rows);
@@ -89,6 +88,7 @@ export class ReadBuffers {
  * With `into`, the arrays are views of the buffers it keeps (see ReadBuffers).
  */
 export async function readColumns(s: Session, sql: string, kinds: readonly ColumnKind[], into?: ReadBuffers): Promise<{ rows: number; columns: (Float64Array | Int32Array)[] }> {
+  const targets = into ?? new ReadBuffers(); // fresh ones: new arrays
   const res = await s.conn.run(sql);
   const types = res.columnTypes();
   kinds.forEach((k, j) => {
@@ -99,8 +99,7 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
   const nat = nativeReader();
   if (nat) {
     const rows = Number((res as unknown as { rowCount: number }).rowCount);
-    // Targets in huge pages where the system allows: their first touch (the copy) is most of the cost.
-    const cols = kinds.map((k, j) => (into ? into.take(j, k, rows) : k === "f64" ? largeFloat64Array(rows) : largeInt32Array(rows)));
+    const cols = kinds.map((k, j) => targets.take(j, k, rows));
     try {
       const copied = nat.copyColumns(raw, cols, kinds.map((k) => BYTES[k]));
       if (copied !== rows) throw new Error(`${copied} rows copied of ${rows}`);
@@ -118,7 +117,7 @@ export async function readColumns(s: Session, sql: string, kinds: readonly Colum
     chunks.push(ch);
     rows += duckdb.data_chunk_get_size(ch);
   }
-  const cols = kinds.map((k, j) => (into ? into.take(j, k, rows) : k === "f64" ? largeFloat64Array(rows) : largeInt32Array(rows)));
+  const cols = kinds.map((k, j) => targets.take(j, k, rows));
   let off = 0;
   for (const ch of chunks) {
     const n = duckdb.data_chunk_get_size(ch);
@@ -145,22 +144,16 @@ export interface OutColumn {
  * the typed arrays, in their order. With the native hand-off DuckDB reads the arrays in place
  * (an Arrow view over them, in batches it numbers, so the insert runs on every core and keeps
  * the order); without it, one data chunk is filled by raw copies and appended, 2048 rows at a
- * time. `keepOrder: false` (for tables read back with ORDER BY or aggregated) is accepted and
- * no longer needed: the order is kept either way.
+ * time.
  */
-export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean; keepOrder?: boolean } = {}): Promise<void> {
+export async function writeColumns(s: Session, table: string, columns: readonly OutColumn[], rows: number, opts: { create?: boolean } = {}): Promise<void> {
   if (opts.create !== false) {
     await s.run(`CREATE OR REPLACE TABLE ${ident(table)} (${columns.map((c) => `${ident(c.name)} ${c.kind === "f64" ? "DOUBLE" : "INTEGER"}`).join(", ")})`);
   }
-  const nat = nativeReader();
-  if (nat && rows > 0) {
-    const db = (s.instance as unknown as { db: duckdb.Database }).db;
-    const view = uniqueView("__cairn_arrays");
-    const inserted = await nat.scanArrays(db, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
-      columns.map((_, j) => `c${j}`), columns.map((c) => c.data), rows, SCAN_BATCH);
-    if (inserted !== rows) throw new Error(`hand-off: ${inserted} rows went into ${table} of ${rows}`);
-    return;
-  }
+  const view = uniqueView("__cairn_arrays");
+  const inPlace = rows > 0 ? scanArrays(s, view, `INSERT INTO ${ident(table)} (${columns.map((c) => ident(c.name)).join(", ")}) SELECT ${columns.map((_, j) => `c${j}`).join(", ")} FROM ${view}`,
+    columns.map((_, j) => `c${j}`), columns.map((c) => c.data), rows) : null;
+  if (inPlace) return inPlace;
   const appender = await s.conn.createAppender(table);
   const types: DuckDBType[] = columns.map((c) => (c.kind === "f64" ? DOUBLE : INTEGER));
   const size = 2048;
@@ -193,10 +186,11 @@ export function uniqueView(prefix: string): string {
 const SCAN_BATCH = 122880;
 
 /**
- * Runs `sql` (a COPY … TO or INSERT … SELECT … FROM `view`, one row out per row in) with the typed arrays as the
- * temporary view `view` (columns `names`; Float64Array → DOUBLE, Int32Array → INTEGER,
- * BigInt64Array → BIGINT), read in place and in order, on a connection of its own: no copy into
- * a table first. The arrays must not change until the promise settles. Null when the native
+ * Runs `sql` (a COPY … TO or INSERT … SELECT … FROM `view`, one row out per row in) with the
+ * typed arrays as the view `view` (a name of its own: uniqueView; columns `names`;
+ * Float64Array → DOUBLE, Int32Array → INTEGER, BigInt64Array → BIGINT), read in place and in
+ * order, on a connection of its own: no copy into a table first. The arrays must not change until
+ * the promise settles; it fails unless the statement took every row. Null when the native
  * hand-off is not built (the caller then writes a table with writeColumns).
  *
  * The query must read every column of the view and filter nothing in the view's own scan:

@@ -16,10 +16,10 @@
  * - the other steps run as in any run, on those tables; a step placed in both is checked equal
  *   to the shards' rows.
  */
-import { PART_OPTIONS, partRows, partSizes } from "../ops/by-cohort-writer.js";
 import { existsSync, readFileSync, statSync } from "node:fs";
 import path from "node:path";
 import { InputChanged, PipelineError } from "../errors.js";
+import { PART_OPTIONS, partRows, partSizes } from "../ops/by-cohort-writer.js";
 import { ident, idents, lit } from "../engine/sql.js";
 import { loadPipeline } from "../spec/load.js";
 import { buildPlan, type Plan, type StepNode } from "../plan/build.js";

@@ -63,13 +63,13 @@ describe("hand-off between DuckDB and typed arrays", () => {
     expect(nativeReader()).not.toBeNull();
   });
 
-  it("writes typed arrays from several threads at once when row order need not be kept (the same rows)", async () => {
+  it("writes many typed-array rows in batches that DuckDB reads at once (the same rows)", async () => {
     const s = await Session.open();
     try {
-      const M = 200_000; // enough rows for more than one appender
+      const M = 200_000; // more than one batch of the in-place scan
       const a = Int32Array.from({ length: M }, (_, i) => i);
       const v = Float64Array.from({ length: M }, (_, i) => i / 3);
-      await writeColumns(s, "u", [{ name: "a", kind: "i32", data: a }, { name: "v", kind: "f64", data: v }], M, { keepOrder: false });
+      await writeColumns(s, "u", [{ name: "a", kind: "i32", data: a }, { name: "v", kind: "f64", data: v }], M);
       const rows = await reference(s, "SELECT a, v FROM u ORDER BY a");
       expect(rows.length).toBe(M);
       expect(rows.every((r, i) => r[0] === i && r[1] === v[i])).toBe(true);

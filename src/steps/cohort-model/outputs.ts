@@ -86,7 +86,7 @@ export async function writeTables(ctx: StepContext, o: O, inp: Inputs, res: Resu
     ...(res.unmet ? [{ name: "unmet_stock_change", kind: "f64" as const, data: res.unmet }] : []),
   ];
   const raw = `__${o.id}_raw`;
-  await writeColumns(s, raw, cols, n * T, { keepOrder: false }); // read back with ORDER BY
+  await writeColumns(s, raw, cols, n * T);
   const sidT = ident(sidTable(o));
   const keysOf = (alias: string) => o.keys.map((k) => `${alias}.${ident(k)}`).join(", ");
   const nanToNull = (c: string) => `CASE WHEN isnan(r.${c}) THEN NULL ELSE r.${c} END AS ${c}`;

@@ -373,7 +373,7 @@ export async function runUncertainty(ctx: StepContext, o: O, inp: Inputs, groups
     { name: "yi", kind: "i32", data: Int32Array.from(yi) }, { name: "central", kind: "f64", data: Float64Array.from(central) },
     { name: "mean", kind: "f64", data: Float64Array.from(mean) }, { name: "sd", kind: "f64", data: Float64Array.from(sd) },
     ...u.quantiles.map((p, i) => ({ name: quantileColumn(p), kind: "f64" as const, data: Float64Array.from(qs[i]!) })),
-  ], N, { keepOrder: false });
+  ], N);
   const cellsT = `__${o.id}_mccells`;
   await writeCells(ctx, o, cellsT, built.cells);
   const names = `__${o.id}_mcnames`;
@@ -485,7 +485,7 @@ async function sensitivity(ctx: StepContext, o: O, inp: Inputs, groups: Group[],
     { name: "first_order", kind: "f64", data: nan(cols.first) }, { name: "total_effect", kind: "f64", data: nan(cols.total) },
     { name: "first_order_low", kind: "f64", data: nan(cols.firstLow) }, { name: "first_order_high", kind: "f64", data: nan(cols.firstHigh) },
     { name: "total_effect_low", kind: "f64", data: nan(cols.totalLow) }, { name: "total_effect_high", kind: "f64", data: nan(cols.totalHigh) },
-  ], kind.length, { keepOrder: false });
+  ], kind.length);
   const keyTypes = await s.all(`SELECT column_name, column_type AS data_type FROM (DESCRIBE ${ident(sidTable(o))})`);
   const typeOf = new Map(keyTypes.map((r) => [String(r.column_name), String(r.data_type)]));
   const K = o.keys.map((kk) => ident(kk));
