@@ -1,5 +1,6 @@
 /** The DuckDB session: one embedded instance, one connection, documented settings. */
 import { DuckDBConnection, DuckDBInstance } from "@duckdb/node-api";
+import { adviseEngineHugePages } from "./handoff.js";
 
 export interface SessionOptions {
   /** DuckDB memory limit, e.g. "6GB" (default: DuckDB's own, 80 % of RAM). */
@@ -35,6 +36,7 @@ export class Session {
     config.autoinstall_known_extensions = "false";
     config.autoload_known_extensions = "false";
     const instance = await DuckDBInstance.create(":memory:", config);
+    adviseEngineHugePages(); // once per process (native/pages.c)
     const conn = await instance.connect();
     // Keep file order in scans and writes: needed for row numbers and a fixed output order.
     await conn.run("SET preserve_insertion_order = true");

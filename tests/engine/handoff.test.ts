@@ -2,7 +2,7 @@ import { describe, expect, it } from "vitest";
 import { existsSync } from "node:fs";
 import path from "node:path";
 import { Session } from "../../src/engine/session.js";
-import { nativeReader, ReadBuffers, readColumns, useNativeReader, writeColumns } from "../../src/engine/handoff.js";
+import { nativeReader, ReadBuffers, readColumns, sortedKeyCounts, useNativeReader, writeColumns } from "../../src/engine/handoff.js";
 import { ROOT } from "../helpers.js";
 
 const N = 5000; // more than two DuckDB chunks (2048 rows each)
@@ -87,6 +87,22 @@ describe("hand-off between DuckDB and typed arrays", () => {
       const rows = await reference(s, "SELECT a, v FROM t");
       expect(rows.length).toBe(N);
       expect(rows.every((r, i) => r[0] === a[i] && r[1] === v[i])).toBe(true);
+    } finally {
+      s.close();
+    }
+  });
+});
+
+describe("sorted keys outside DuckDB (native/keysort.c)", () => {
+  it("counts rows, NULL keys and repeated keys as SQL's sort does", async () => {
+    const s = await Session.open();
+    try {
+      // 1,000,000 keys: i % 300,007 repeats, every 97th NULL. Reference: DuckDB's own counts.
+      const sql = "SELECT CASE WHEN i % 97 = 0 THEN NULL ELSE hash(i % 300007) END FROM range(1000000) t(i)";
+      const r = await sortedKeyCounts(s, sql);
+      expect(r).not.toBeNull();
+      const ref = await s.one(`SELECT count(*) AS rows, count(*) - count(h) AS nulls, count(h) - count(DISTINCT h) AS equal FROM (${sql}) q(h)`);
+      expect(r).toEqual({ rows: Number(ref.rows), nulls: Number(ref.nulls), outOfRange: 0, equal: Number(ref.equal), pairs: 0 });
     } finally {
       s.close();
     }

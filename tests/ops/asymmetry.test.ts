@@ -2,6 +2,7 @@ import { afterAll, beforeAll, describe, expect, it } from "vitest";
 import { Session } from "../../src/engine/session.js";
 import { Exact } from "../../src/engine/sql.js";
 import { asymmetryItems } from "../../src/ops/asymmetry.js";
+import { nativeReader, useNativeReader } from "../../src/engine/handoff.js";
 
 // The two ways of finding pairs of reports must give the same items. The reference is the
 // grouped way, checked by hand in apparent-consumption.test.ts; here the same items must
@@ -62,5 +63,42 @@ describe("trade asymmetry: pairs found by sorted numbered keys = pairs found by 
     const dy = await items("dy");
     expect(dy.path).toBe("grouped text keys");
     expect(dy.rows).toHaveLength(1);
+  });
+
+  it("sorted outside DuckDB (native/keysort.c) = sorted by DuckDB = grouped, on 300,000 reports in thousands of partitions", async () => {
+    // 40 regions, 50 commodities, 10 years: keys of 21 bits, 4,096 partitions, blocks filled
+    // and chained on two threads; about half the pairs reported by both sides.
+    await s.run(`CREATE TABLE big AS
+      WITH k AS (SELECT 'R' || i AS imp, 'R' || e AS exp, 'C' || c AS commodity, CAST(1990 + y AS BIGINT) AS year, hash(i, e, c, y) % 4 AS who
+                 FROM range(40) a(i), range(40) b(e), range(50) d(c), range(10) f(y) WHERE i <> e AND hash(i, c, e, y) % 5 = 0)
+      SELECT imp AS reporter, exp AS partner, commodity, 'import' AS flow, year, (hash(imp, commodity, year) % 100000) / 9.0 AS quantity, FALSE AS mirrored FROM k WHERE who IN (0, 1)
+      UNION ALL
+      SELECT exp, imp, commodity, 'export', year, ((hash(imp, commodity, year) % 100000) / 9.0) * (0.5 + (hash(exp, commodity, year) % 100) / 100.0), FALSE FROM k WHERE who IN (0, 2)`);
+    expect(Number(await s.scalar("SELECT count(*) FROM big"))).toBeGreaterThan(100_000);
+    expect(nativeReader()).not.toBeNull(); // built by npm ci (scripts/build-native.mjs)
+    const native = await items("big");
+    useNativeReader(false);
+    let bySql;
+    try {
+      bySql = await items("big");
+    } finally {
+      useNativeReader(true);
+    }
+    const grouped = await items("big", true);
+    expect(native.path).toBe("sorted keys");
+    expect(bySql.path).toBe("sorted keys");
+    expect(native.rows.length).toBeGreaterThan(30_000);
+    expect(native.rows).toEqual(grouped.rows);
+    expect(bySql.rows).toEqual(grouped.rows);
+    // the pairs table comes out in key order from the native sort
+    const a = await asymmetryItems(s, { trade: "big", prefix: "__t_order", threshold: 0.25, exact: new Exact(1e6) });
+    expect(Number(await s.scalar(`SELECT count(*) FROM (SELECT k, lag(k) OVER (ORDER BY rowid) AS p FROM "__t_order_pairs") WHERE p >= k`))).toBe(0);
+    await a.cleanup();
+  });
+
+  it("a duplicate report among 300,000 sends the native sort to the general way too", async () => {
+    await s.run(`CREATE TABLE bigdup AS SELECT * FROM big UNION ALL (SELECT * FROM big WHERE flow = 'export' LIMIT 1)`);
+    const r = await items("bigdup");
+    expect(r.path).toBe("grouped text keys");
   });
 });
