@@ -383,12 +383,10 @@ static napi_value scan_arrays(napi_env env, napi_callback_info info) {
   return promise;
 }
 
-void cairn_register_pages(napi_env env, napi_value exports);   /* pages.c */
 void cairn_register_keysort(napi_env env, napi_value exports); /* keysort.c */
 
 NAPI_MODULE_INIT(/* napi_env env, napi_value exports */) {
   napi_value fn;
-  cairn_register_pages(env, exports);
   cairn_register_keysort(env, exports);
   napi_create_function(env, "copyColumns", NAPI_AUTO_LENGTH, copy_columns, NULL, &fn);
   napi_set_named_property(env, exports, "copyColumns", fn);

@@ -24,10 +24,6 @@ interface NativeReader {
   scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<number>;
   /** native/keysort.c: see sortedKeys below. */
   sortedKeys(db: duckdb.Database, mode: 0 | 1, sql: string, bits: number, table: string): Promise<SortedKeyCounts>;
-  /** native/pages.c: huge pages for the engine's own memory; returns the arenas hooked (0: not possible, -1: done before). */
-  adviseEngineHugePages(): number;
-  /** Bytes of engine memory advised so far. */
-  engineHugePageBytes(): number;
 }
 
 let native: NativeReader | null | undefined;
@@ -54,31 +50,6 @@ export function nativeReader(): NativeReader | null {
     }
   }
   return native;
-}
-
-let enginePages: boolean | undefined;
-/**
- * Asks the kernel to back DuckDB's working memory with 2 MiB pages (native/pages.c), once per
- * process: where faulting memory in 4 KiB pages is slow (a virtual machine here: about 10 µs per
- * page), this took a sort of 10^8 key hashes from 9.1 to 6.8–7.8 s. Off with CAIRN_HUGE_PAGES=0,
- * without the native library, or where the kernel has transparent huge pages off ("never").
- */
-export function adviseEngineHugePages(): boolean {
-  if (enginePages === undefined) {
-    enginePages = false;
-    const n = process.env.CAIRN_HUGE_PAGES === "0" ? null : nativeReader();
-    if (n && typeof n.adviseEngineHugePages === "function" && thpMode() !== "never") enginePages = n.adviseEngineHugePages() > 0;
-  }
-  return enginePages;
-}
-
-/** The kernel's transparent-huge-page mode (always, madvise, never), or null where not told. */
-function thpMode(): string | null {
-  try {
-    return /\[(\w+)\]/.exec(readFileSync("/sys/kernel/mm/transparent_hugepage/enabled", "utf8"))?.[1] ?? null;
-  } catch {
-    return null;
-  }
 }
 
 function allValid(vec: duckdb.Vector, n: number): boolean {

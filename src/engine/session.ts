@@ -1,6 +1,5 @@
 /** The DuckDB session: one embedded instance, one connection, documented settings. */
 import { DuckDBConnection, DuckDBInstance } from "@duckdb/node-api";
-import { adviseEngineHugePages } from "./handoff.js";
 
 export interface SessionOptions {
   /** DuckDB memory limit, e.g. "6GB" (default: DuckDB's own, 80 % of RAM). */
@@ -16,6 +15,8 @@ export type Row = Record<string, unknown>;
 /** CAIRN_PROFILE=1 prints every statement slower than 50 ms to stderr (for tuning). */
 const PROFILE = process.env.CAIRN_PROFILE === "1";
 const PROFILE_MS = Number(process.env.CAIRN_PROFILE_MS ?? 50);
+/** CAIRN_EXPLAIN=<regular expression>: statements run() with matching text print DuckDB's EXPLAIN ANALYZE profile (for tuning). */
+const EXPLAIN = process.env.CAIRN_EXPLAIN ? new RegExp(process.env.CAIRN_EXPLAIN) : null;
 function profile(sql: string, t0: number): void {
   const ms = performance.now() - t0;
   if (ms > PROFILE_MS) process.stderr.write(`[sql ${ms.toFixed(0)} ms] ${sql.replace(/\s+/g, " ").slice(0, Number(process.env.CAIRN_PROFILE_CHARS ?? 160))}\n`);
@@ -36,7 +37,6 @@ export class Session {
     config.autoinstall_known_extensions = "false";
     config.autoload_known_extensions = "false";
     const instance = await DuckDBInstance.create(":memory:", config);
-    adviseEngineHugePages(); // once per process (native/pages.c)
     const conn = await instance.connect();
     // Keep file order in scans and writes: needed for row numbers and a fixed output order.
     await conn.run("SET preserve_insertion_order = true");
@@ -45,6 +45,12 @@ export class Session {
 
   async run(sql: string): Promise<void> {
     const t0 = PROFILE ? performance.now() : 0;
+    if (EXPLAIN && EXPLAIN.test(sql)) {
+      // Runs the statement under EXPLAIN ANALYZE (which executes it) and prints DuckDB's profile.
+      const r = await this.conn.runAndReadAll(`EXPLAIN ANALYZE ${sql}`);
+      process.stderr.write(`${r.getRows().map((row) => String(row[1])).join("\n")}\n`);
+      return;
+    }
     await this.conn.run(sql);
     if (PROFILE) profile(sql, t0);
   }
