@@ -384,10 +384,12 @@ static napi_value scan_arrays(napi_env env, napi_callback_info info) {
 }
 
 void cairn_register_keysort(napi_env env, napi_value exports); /* keysort.c */
+void cairn_register_concsum(napi_env env, napi_value exports); /* concsum.c */
 
 NAPI_MODULE_INIT(/* napi_env env, napi_value exports */) {
   napi_value fn;
   cairn_register_keysort(env, exports);
+  cairn_register_concsum(env, exports);
   napi_create_function(env, "copyColumns", NAPI_AUTO_LENGTH, copy_columns, NULL, &fn);
   napi_set_named_property(env, exports, "copyColumns", fn);
   napi_create_function(env, "scanArrays", NAPI_AUTO_LENGTH, scan_arrays, NULL, &fn);

@@ -33,58 +33,7 @@
 #include <sys/mman.h>
 #include <unistd.h>
 
-typedef uint64_t idx_t;
-typedef int duckdb_state;
-typedef struct {
-  idx_t deprecated_column_count;
-  idx_t deprecated_row_count;
-  idx_t deprecated_rows_changed;
-  void *deprecated_columns;
-  char *deprecated_error_message;
-  void *internal_data;
-} duckdb_result;
-typedef void *duckdb_database;
-typedef void *duckdb_connection;
-typedef void *duckdb_data_chunk;
-typedef void *duckdb_vector;
-typedef void *duckdb_scalar_function;
-typedef void *duckdb_function_info;
-typedef void *duckdb_logical_type;
-typedef void *duckdb_appender;
-enum { TYPE_INTEGER = 4, TYPE_BIGINT = 5, TYPE_UBIGINT = 9 };
-
-extern duckdb_state duckdb_connect(duckdb_database database, duckdb_connection *out);
-extern void duckdb_disconnect(duckdb_connection *connection);
-extern duckdb_state duckdb_query(duckdb_connection connection, const char *query, duckdb_result *out);
-extern const char *duckdb_result_error(duckdb_result *result);
-extern void duckdb_destroy_result(duckdb_result *result);
-extern idx_t duckdb_data_chunk_get_size(duckdb_data_chunk chunk);
-extern duckdb_vector duckdb_data_chunk_get_vector(duckdb_data_chunk chunk, idx_t col_idx);
-extern void *duckdb_vector_get_data(duckdb_vector vector);
-extern uint64_t *duckdb_vector_get_validity(duckdb_vector vector);
-extern duckdb_scalar_function duckdb_create_scalar_function(void);
-extern void duckdb_destroy_scalar_function(duckdb_scalar_function *f);
-extern void duckdb_scalar_function_set_name(duckdb_scalar_function f, const char *name);
-extern void duckdb_scalar_function_add_parameter(duckdb_scalar_function f, duckdb_logical_type t);
-extern void duckdb_scalar_function_set_return_type(duckdb_scalar_function f, duckdb_logical_type t);
-extern void duckdb_scalar_function_set_extra_info(duckdb_scalar_function f, void *extra, void (*destroy)(void *));
-extern void duckdb_scalar_function_set_function(duckdb_scalar_function f, void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector));
-extern void duckdb_scalar_function_set_volatile(duckdb_scalar_function f);
-extern void duckdb_scalar_function_set_special_handling(duckdb_scalar_function f);
-extern duckdb_state duckdb_register_scalar_function(duckdb_connection con, duckdb_scalar_function f);
-extern void *duckdb_scalar_function_get_extra_info(duckdb_function_info info);
-extern void duckdb_scalar_function_set_error(duckdb_function_info info, const char *error);
-extern duckdb_logical_type duckdb_create_logical_type(int type);
-extern void duckdb_destroy_logical_type(duckdb_logical_type *t);
-extern duckdb_state duckdb_appender_create(duckdb_connection con, const char *schema, const char *table, duckdb_appender *out);
-extern const char *duckdb_appender_error(duckdb_appender app);
-extern duckdb_state duckdb_append_data_chunk(duckdb_appender app, duckdb_data_chunk chunk);
-extern duckdb_state duckdb_appender_close(duckdb_appender app);
-extern duckdb_state duckdb_appender_destroy(duckdb_appender *app);
-extern duckdb_data_chunk duckdb_create_data_chunk(duckdb_logical_type *types, idx_t column_count);
-extern void duckdb_destroy_data_chunk(duckdb_data_chunk *chunk);
-extern void duckdb_data_chunk_set_size(duckdb_data_chunk chunk, idx_t size);
-extern idx_t duckdb_vector_size(void);
+#include "duckdb_api.h"
 
 /* ---- memory: 256 MiB chunks advised for huge pages, handed out by bumping ---- */
 
@@ -354,18 +303,6 @@ static void *sort_parts(void *arg) {
   return NULL;
 }
 
-static bool run(duckdb_connection conn, const char *sql, char *error, size_t size) {
-  duckdb_result res;
-  memset(&res, 0, sizeof res);
-  bool ok = duckdb_query(conn, sql, &res) == 0;
-  if (!ok) {
-    const char *e = duckdb_result_error(&res);
-    snprintf(error, size, "%s", e ? e : "the statement failed");
-  }
-  duckdb_destroy_result(&res);
-  return ok;
-}
-
 /* Mode 1: the pairs, in key order, appended to j->table (pair BIGINT, m BIGINT, x BIGINT). */
 static void append_pairs(job *j, duckdb_connection conn) {
   duckdb_appender app = NULL;
@@ -416,21 +353,8 @@ static void execute(napi_env env, void *data) {
   }
   char name[64];
   snprintf(name, sizeof name, "__cairn_keys_%llu", (unsigned long long)j->id);
-  duckdb_scalar_function f = duckdb_create_scalar_function();
-  duckdb_scalar_function_set_name(f, name);
-  duckdb_logical_type t = duckdb_create_logical_type(j->mode == 0 ? TYPE_UBIGINT : TYPE_BIGINT);
-  duckdb_scalar_function_add_parameter(f, t);
-  if (j->mode == 1) duckdb_scalar_function_add_parameter(f, t);
-  duckdb_destroy_logical_type(&t);
-  t = duckdb_create_logical_type(TYPE_INTEGER);
-  duckdb_scalar_function_set_return_type(f, t);
-  duckdb_destroy_logical_type(&t);
-  duckdb_scalar_function_set_extra_info(f, j, NULL);
-  duckdb_scalar_function_set_function(f, sink);
-  duckdb_scalar_function_set_volatile(f);
-  duckdb_scalar_function_set_special_handling(f); /* NULL keys reach the function: they are counted */
-  bool ok = duckdb_register_scalar_function(conn, f) == 0;
-  duckdb_destroy_scalar_function(&f);
+  const int params[2] = { j->mode == 0 ? TYPE_UBIGINT : TYPE_BIGINT, TYPE_BIGINT };
+  bool ok = cairn_register_sink(conn, name, params, j->mode == 0 ? 1 : 2, j, sink);
   if (!ok) snprintf(j->error, sizeof j->error, "sorted keys: cannot register %s", name);
   if (ok) {
     size_t len = strlen(j->sql) + 256;
@@ -438,7 +362,7 @@ static void execute(napi_env env, void *data) {
     if (!q) ok = false, snprintf(j->error, sizeof j->error, "sorted keys: out of memory");
     else {
       snprintf(q, len, j->mode == 0 ? "SELECT sum(%s(c0)) FROM (%s) AS q(c0)" : "SELECT sum(%s(c0, c1)) FROM (%s) AS q(c0, c1)", name, j->sql);
-      ok = run(conn, q, j->error, sizeof j->error);
+      ok = cairn_run(conn, q, j->error, sizeof j->error);
       free(q);
     }
   }

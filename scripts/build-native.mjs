@@ -75,7 +75,7 @@ else {
   mkdirSync(path.dirname(out), { recursive: true });
   const cc = process.env.CC ?? "cc";
   try {
-    execFileSync(cc, ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "handoff.c"), path.join(root, "native", "keysort.c"), "-O3", "-pthread", "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
+    execFileSync(cc, ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "handoff.c"), path.join(root, "native", "keysort.c"), path.join(root, "native", "sink.c"), path.join(root, "native", "concsum.c"), "-O3", "-ffp-contract=off", "-pthread", "-lm", "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
     writeFileSync(`${out}.json`, JSON.stringify({ bindings: bindingsVersion(), node: process.version }) + "\n");
     say(`built ${path.relative(root, out)}`);
   } catch (e) {

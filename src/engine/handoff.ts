@@ -22,6 +22,9 @@ interface NativeReader {
   copyColumns(result: duckdb.Result, targets: (Float64Array | Int32Array)[], widths: number[]): number;
   /** Runs `sql` on a connection of its own, off this thread, with the arrays as the view `view` (read in place, in order); resolves to the statement's row count. */
   scanArrays(db: duckdb.Database, view: string, sql: string, names: string[], sources: (Float64Array | Int32Array | BigInt64Array)[], rows: number, batch: number): Promise<number>;
+  /** native/concsum.c: see src/ops/concordance-native.ts. */
+  concordanceSums(db: duckdb.Database, sql: string, dims: number[], cstart: Int32Array, ck: Int32Array, factor: Float64Array, share: Float64Array, first: Int32Array):
+    Promise<{ invalid: number; cells: number; ints: Int32Array; sums: BigInt64Array }>;
   /** native/keysort.c: see sortedKeys below. */
   sortedKeys(db: duckdb.Database, mode: 0 | 1, sql: string, bits: number, table: string): Promise<SortedKeyCounts>;
 }

@@ -7,6 +7,7 @@
 import { duplicateKeys, invertedRanges, locatedRelation, raise, rowsWhere, type Problem } from "./config-table.js";
 import { ident, idents, keyMap, lit } from "../engine/sql.js";
 import type { StepContext } from "../steps/types.js";
+import { nativeParts } from "./concordance-native.js";
 
 export const CONCORDANCE_COLUMNS = ["commodity", "product", "material", "factor", "share", "unit_mass", "first_year", "last_year"] as const;
 export const CONCORDANCE_REQUIRED = ["commodity", "product", "material", "factor"] as const;
@@ -124,7 +125,9 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
       failMessage: "unit_mass differs between rows of one commodity",
     });
   }
-  await s.run(`CREATE OR REPLACE TABLE ${um} AS SELECT ${idents(yk)}, max(unit_mass) AS unit_mass FROM ${conc} GROUP BY ${idents(yk)}`);
+  // Commodity ids (__cid) for the native sums (concordance-native.ts).
+  await s.run(`CREATE OR REPLACE TABLE ${um} AS SELECT *${tv ? "" : ", CAST(row_number() OVER (ORDER BY commodity) - 1 AS INTEGER) AS __cid"} FROM (
+      SELECT ${idents(yk)}, max(unit_mass) AS unit_mass FROM ${conc} GROUP BY ${idents(yk)})`);
 
   // Input rows in mass (pieces × unit mass), as a view; rows that cannot be mapped get a reason.
   const g = r.groupKeys;
@@ -140,7 +143,7 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
     SELECT ${gl("i.")}CAST(i.commodity AS VARCHAR) AS commodity, i.year,
       ${massedValues},
       ${flags.map((f) => `i.${ident(f)}, `).join("")}
-      ${hasUnit ? "i.unit" : base} AS unit, (${isPiece} AND u.unit_mass IS NULL) AS __nomass,
+      ${hasUnit ? "i.unit" : base} AS unit, (${isPiece} AND u.unit_mass IS NULL) AS __nomass, ${tv ? "NULL" : "u.__cid"} AS __cid,
       CASE WHEN u.commodity IS NULL THEN ${lit(tv ? "commodity not in the concordance for this year" : "commodity not in the concordance")}
            WHEN ${isPiece} AND u.unit_mass IS NULL THEN 'counted in pieces but the concordance gives no unit_mass' END AS reason
     FROM ${ident(r.input)} i LEFT JOIN ${um} u ON u.commodity = CAST(i.commodity AS VARCHAR)${tv ? " AND u.year = i.year" : ""}`);
@@ -174,7 +177,11 @@ export async function applyConcordance(ctx: StepContext, r: MappingRequest): Pro
       `sum(CASE WHEN __once AND NOT __nomass THEN ${ctx.exact.units(`coalesce(${ident(v)}, 0)`)} ELSE 0 END) AS ${ident("__i_" + v)}`,
       `sum(CASE WHEN __once AND reason IS NOT NULL AND NOT __nomass THEN ${ctx.exact.units(`coalesce(${ident(v)}, 0)`)} ELSE 0 END) AS ${ident("__u_" + v)}`,
     ].join(", ")).join(",\n      ");
-  await s.run(`CREATE OR REPLACE TEMP TABLE ${parts} AS
+  const native = L && !tv && flags.length <= 1 && await nativeParts(ctx, {
+    step: r.step, input: r.input, massed: `__massed_${r.step}`, groupKeys: g, extraKeys, fine, values: r.values, flag: flags[0] ?? null,
+    conc: `__conc_${r.step}`, um: `__um_${r.step}`, parts: `__parts_${r.step}`,
+  });
+  if (!native) await s.run(`CREATE OR REPLACE TEMP TABLE ${parts} AS
     SELECT ${idents(fine)}, year${byKind}, ${sums},
       ${flags.map((f) => `bool_or(${ident(f)}) FILTER (WHERE reason IS NULL) AS ${ident(f)}, `).join("")}
       count(*) FILTER (WHERE reason IS NULL) AS __mapped_rows, count(*) FILTER (WHERE __once AND reason IS NOT NULL) AS __unmapped_rows

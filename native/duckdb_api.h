@@ -1,0 +1,70 @@
+/*
+ * The parts of DuckDB's C API (duckdb.h, DuckDB 1.x) that the native sinks use (keysort.c,
+ * concsum.c), declared here because @duckdb/node-bindings ships the library without its header.
+ */
+#ifndef CAIRN_DUCKDB_API_H
+#define CAIRN_DUCKDB_API_H
+#include <stdbool.h>
+#include <stdint.h>
+
+typedef uint64_t idx_t;
+typedef int duckdb_state;
+typedef struct {
+  idx_t deprecated_column_count;
+  idx_t deprecated_row_count;
+  idx_t deprecated_rows_changed;
+  void *deprecated_columns;
+  char *deprecated_error_message;
+  void *internal_data;
+} duckdb_result;
+typedef void *duckdb_database;
+typedef void *duckdb_connection;
+typedef void *duckdb_data_chunk;
+typedef void *duckdb_vector;
+typedef void *duckdb_scalar_function;
+typedef void *duckdb_function_info;
+typedef void *duckdb_logical_type;
+typedef void *duckdb_appender;
+enum { TYPE_BOOLEAN = 1, TYPE_INTEGER = 4, TYPE_BIGINT = 5, TYPE_UBIGINT = 9, TYPE_DOUBLE = 11 };
+
+extern duckdb_state duckdb_connect(duckdb_database database, duckdb_connection *out);
+extern void duckdb_disconnect(duckdb_connection *connection);
+extern duckdb_state duckdb_query(duckdb_connection connection, const char *query, duckdb_result *out);
+extern const char *duckdb_result_error(duckdb_result *result);
+extern void duckdb_destroy_result(duckdb_result *result);
+extern idx_t duckdb_data_chunk_get_size(duckdb_data_chunk chunk);
+extern duckdb_vector duckdb_data_chunk_get_vector(duckdb_data_chunk chunk, idx_t col_idx);
+extern void *duckdb_vector_get_data(duckdb_vector vector);
+extern uint64_t *duckdb_vector_get_validity(duckdb_vector vector);
+extern duckdb_scalar_function duckdb_create_scalar_function(void);
+extern void duckdb_destroy_scalar_function(duckdb_scalar_function *f);
+extern void duckdb_scalar_function_set_name(duckdb_scalar_function f, const char *name);
+extern void duckdb_scalar_function_add_parameter(duckdb_scalar_function f, duckdb_logical_type t);
+extern void duckdb_scalar_function_set_return_type(duckdb_scalar_function f, duckdb_logical_type t);
+extern void duckdb_scalar_function_set_extra_info(duckdb_scalar_function f, void *extra, void (*destroy)(void *));
+extern void duckdb_scalar_function_set_function(duckdb_scalar_function f, void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector));
+extern void duckdb_scalar_function_set_volatile(duckdb_scalar_function f);
+extern void duckdb_scalar_function_set_special_handling(duckdb_scalar_function f);
+extern duckdb_state duckdb_register_scalar_function(duckdb_connection con, duckdb_scalar_function f);
+extern void *duckdb_scalar_function_get_extra_info(duckdb_function_info info);
+extern void duckdb_scalar_function_set_error(duckdb_function_info info, const char *error);
+extern duckdb_logical_type duckdb_create_logical_type(int type);
+extern void duckdb_destroy_logical_type(duckdb_logical_type *t);
+extern duckdb_state duckdb_appender_create(duckdb_connection con, const char *schema, const char *table, duckdb_appender *out);
+extern const char *duckdb_appender_error(duckdb_appender app);
+extern duckdb_state duckdb_append_data_chunk(duckdb_appender app, duckdb_data_chunk chunk);
+extern duckdb_state duckdb_appender_close(duckdb_appender app);
+extern duckdb_state duckdb_appender_destroy(duckdb_appender *app);
+extern duckdb_data_chunk duckdb_create_data_chunk(duckdb_logical_type *types, idx_t column_count);
+extern void duckdb_destroy_data_chunk(duckdb_data_chunk *chunk);
+extern void duckdb_data_chunk_set_size(duckdb_data_chunk chunk, idx_t size);
+extern idx_t duckdb_vector_size(void);
+
+
+/* Registers a scalar function `name`(params…) → INTEGER on `conn`, called with `extra`. */
+bool cairn_register_sink(duckdb_connection conn, const char *name, const int *params, int nparams, void *extra,
+                         void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector));
+/* Runs `sql` on `conn`; on failure writes DuckDB's message to error. */
+bool cairn_run(duckdb_connection conn, const char *sql, char *error, size_t size);
+
+#endif
