@@ -26,7 +26,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
-#include "duckdb_api.h"
+#include "common.h"
 
 typedef struct {
   __int128 m, d, in, un;
@@ -278,11 +278,6 @@ static void complete(napi_env env, napi_status status, void *data) {
   free(j);
 }
 
-static napi_value fail(napi_env env, const char *msg) {
-  napi_throw_error(env, NULL, msg);
-  return NULL;
-}
-
 static bool typed(napi_env env, napi_value v, napi_typedarray_type want, size_t minLen, void **data, napi_ref *ref) {
   napi_typedarray_type type;
   size_t len, off;
@@ -306,16 +301,13 @@ static bool typed(napi_env env, napi_value v, napi_typedarray_type want, size_t 
 static napi_value concordance_sums(napi_env env, napi_callback_info info) {
   size_t argc = 8;
   napi_value argv[8];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 8) return fail(env, "concordanceSums(database, sql, dims, cstart, ck, factor, share, first)");
-  void *holder = NULL;
-  if (napi_get_value_external(env, argv[0], &holder) != napi_ok || !holder || !*(duckdb_database *)holder) return fail(env, "concordanceSums: not an open DuckDB database");
+  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 8) return cairn_fail(env, "concordanceSums(database, sql, dims, cstart, ck, factor, share, first)");
+  duckdb_database db = cairn_database(env, argv[0]);
+  if (!db) return cairn_fail(env, "concordanceSums: not an open DuckDB database");
   job *j = calloc(1, sizeof *j);
-  if (!j) return fail(env, "concordanceSums: out of memory");
-  j->db = *(duckdb_database *)holder;
-  size_t len = 0;
-  napi_get_value_string_utf8(env, argv[1], NULL, 0, &len);
-  j->sql = malloc(len + 1);
-  if (j->sql) napi_get_value_string_utf8(env, argv[1], j->sql, len + 1, &len);
+  if (!j) return cairn_fail(env, "concordanceSums: out of memory");
+  j->db = db;
+  j->sql = cairn_string(env, argv[1]);
   double d[6] = { 0 };
   for (uint32_t i = 0; i < 6; i++) {
     napi_value x;
@@ -352,7 +344,7 @@ static napi_value concordance_sums(napi_env env, napi_callback_info info) {
     for (int r = 0; r < 5; r++) if (j->refs[r]) napi_delete_reference(env, j->refs[r]);
     free(j->sql);
     free(j);
-    return fail(env, bad);
+    return cairn_fail(env, bad);
   }
   j->id = __atomic_add_fetch(&jobCounter, 1, __ATOMIC_RELAXED);
   pthread_mutex_init(&j->mu, NULL);

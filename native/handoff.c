@@ -22,37 +22,7 @@
 #include <stdlib.h>
 #include <string.h>
 
-typedef uint64_t idx_t;
-/* The public result struct of duckdb.h: five deprecated fields, then the internal pointer. */
-typedef struct {
-  idx_t deprecated_column_count;
-  idx_t deprecated_row_count;
-  idx_t deprecated_rows_changed;
-  void *deprecated_columns;
-  char *deprecated_error_message;
-  void *internal_data;
-} duckdb_result;
-typedef void *duckdb_data_chunk;
-typedef void *duckdb_vector;
-
-extern idx_t duckdb_result_chunk_count(duckdb_result result);
-extern duckdb_data_chunk duckdb_result_get_chunk(duckdb_result result, idx_t chunk_index);
-extern idx_t duckdb_data_chunk_get_size(duckdb_data_chunk chunk);
-extern duckdb_vector duckdb_data_chunk_get_vector(duckdb_data_chunk chunk, idx_t col_idx);
-extern void *duckdb_vector_get_data(duckdb_vector vector);
-extern uint64_t *duckdb_vector_get_validity(duckdb_vector vector);
-extern void duckdb_destroy_data_chunk(duckdb_data_chunk *chunk);
-
-typedef void *duckdb_database;
-typedef void *duckdb_connection;
-typedef int duckdb_state; /* DuckDBSuccess = 0 */
-extern duckdb_state duckdb_connect(duckdb_database database, duckdb_connection *out);
-extern void duckdb_disconnect(duckdb_connection *connection);
-
-static napi_value fail(napi_env env, const char *msg) {
-  napi_throw_error(env, NULL, msg);
-  return NULL;
-}
+#include "common.h"
 
 static int all_valid(const uint64_t *mask, idx_t n) {
   if (!mask) return 1;
@@ -95,12 +65,12 @@ static const char *typed_columns(napi_env env, napi_value arrays, napi_value wid
 static napi_value copy_columns(napi_env env, napi_callback_info info) {
   size_t argc = 3;
   napi_value argv[3];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 3) return fail(env, "copyColumns(result, targets, widths)");
+  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 3) return cairn_fail(env, "copyColumns(result, targets, widths)");
   duckdb_result *res = NULL;
-  if (napi_get_value_external(env, argv[0], (void **)&res) != napi_ok || !res || !res->internal_data) return fail(env, "copyColumns: not a DuckDB result");
+  if (napi_get_value_external(env, argv[0], (void **)&res) != napi_ok || !res || !res->internal_data) return cairn_fail(env, "copyColumns: not a DuckDB result");
   uint32_t ncols = 0;
   napi_get_array_length(env, argv[1], &ncols);
-  if (ncols > 64) return fail(env, "copyColumns: at most 64 columns");
+  if (ncols > 64) return cairn_fail(env, "copyColumns: at most 64 columns");
   uint8_t *base[64];
   size_t cap[64];
   uint32_t width[64];
@@ -108,7 +78,7 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
   if (bad) {
     char msg[128];
     snprintf(msg, sizeof msg, "copyColumns: targets: %s", bad);
-    return fail(env, msg);
+    return cairn_fail(env, msg);
   }
   idx_t chunks = duckdb_result_chunk_count(*res);
   idx_t row = 0;
@@ -119,18 +89,18 @@ static napi_value copy_columns(napi_env env, napi_callback_info info) {
     for (uint32_t j = 0; j < ncols; j++) {
       if (row + n > cap[j]) {
         duckdb_destroy_data_chunk(&ch);
-        return fail(env, "copyColumns: target array too small");
+        return cairn_fail(env, "copyColumns: target array too small");
       }
       duckdb_vector v = duckdb_data_chunk_get_vector(ch, j);
       if (!v) {
         duckdb_destroy_data_chunk(&ch);
-        return fail(env, "copyColumns: the result has fewer columns than targets");
+        return cairn_fail(env, "copyColumns: the result has fewer columns than targets");
       }
       if (!all_valid(duckdb_vector_get_validity(v), n)) {
         duckdb_destroy_data_chunk(&ch);
         char msg[64];
         snprintf(msg, sizeof msg, "NULL in column %u", j);
-        return fail(env, msg);
+        return cairn_fail(env, msg);
       }
       memcpy(base[j] + row * width[j], duckdb_vector_get_data(v), n * width[j]);
     }
@@ -182,10 +152,6 @@ struct ArrowArrayStream {
 };
 typedef void *duckdb_arrow_stream;
 extern duckdb_state duckdb_arrow_scan(duckdb_connection connection, const char *table_name, duckdb_arrow_stream arrow);
-extern duckdb_state duckdb_query(duckdb_connection connection, const char *query, duckdb_result *out_result);
-extern const char *duckdb_result_error(duckdb_result *result);
-extern void duckdb_destroy_result(duckdb_result *result);
-extern idx_t duckdb_rows_changed(duckdb_result *result);
 
 #define MAXCOLS 64
 typedef struct {
@@ -321,17 +287,15 @@ static void scan_complete(napi_env env, napi_status status, void *data) {
 static napi_value scan_arrays(napi_env env, napi_callback_info info) {
   size_t argc = 7;
   napi_value argv[7];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 7) return fail(env, "scanArrays(database, view, sql, names, sources, rows, batch)");
-  void *holder = NULL;
-  if (napi_get_value_external(env, argv[0], &holder) != napi_ok || !holder) return fail(env, "scanArrays: not a DuckDB database");
-  duckdb_database db = *(duckdb_database *)holder;
-  if (!db) return fail(env, "scanArrays: the database is closed");
+  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 7) return cairn_fail(env, "scanArrays(database, view, sql, names, sources, rows, batch)");
+  duckdb_database db = cairn_database(env, argv[0]);
+  if (!db) return cairn_fail(env, "scanArrays: not an open DuckDB database");
   scan_job *j = calloc(1, sizeof *j);
-  if (!j) return fail(env, "scanArrays: out of memory");
+  if (!j) return cairn_fail(env, "scanArrays: out of memory");
   j->db = db;
   size_t len = 0;
-  if (napi_get_value_string_utf8(env, argv[1], j->view, sizeof j->view, &len) != napi_ok || len >= sizeof j->view - 1) { free(j); return fail(env, "scanArrays: view name"); }
-  if (napi_get_value_string_utf8(env, argv[2], NULL, 0, &len) != napi_ok) { free(j); return fail(env, "scanArrays: sql"); }
+  if (napi_get_value_string_utf8(env, argv[1], j->view, sizeof j->view, &len) != napi_ok || len >= sizeof j->view - 1) { free(j); return cairn_fail(env, "scanArrays: view name"); }
+  if (napi_get_value_string_utf8(env, argv[2], NULL, 0, &len) != napi_ok) { free(j); return cairn_fail(env, "scanArrays: sql"); }
   j->sql = malloc(len + 1);
   napi_get_value_string_utf8(env, argv[2], j->sql, len + 1, &len);
   uint32_t ncols = 0, ncols2 = 0;
@@ -372,7 +336,7 @@ static napi_value scan_arrays(napi_env env, napi_callback_info info) {
     for (uint32_t c = 0; c < ncols && c < MAXCOLS; c++) if (j->refs[c]) napi_delete_reference(env, j->refs[c]);
     free(j->sql);
     free(j);
-    return fail(env, bad);
+    return cairn_fail(env, bad);
   }
   a->root = (struct ArrowSchema){ "+s", "", NULL, 0, ncols, a->colp, NULL, schema_noop, NULL };
   napi_value promise, name;

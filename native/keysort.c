@@ -33,7 +33,7 @@
 #include <sys/mman.h>
 #include <unistd.h>
 
-#include "duckdb_api.h"
+#include "common.h"
 
 /* ---- memory: 256 MiB chunks advised for huge pages, handed out by bumping ---- */
 
@@ -427,19 +427,6 @@ static void complete(napi_env env, napi_status status, void *data) {
   free(j);
 }
 
-static char *string_arg(napi_env env, napi_value v) {
-  size_t len = 0;
-  if (napi_get_value_string_utf8(env, v, NULL, 0, &len) != napi_ok) return NULL;
-  char *s = malloc(len + 1);
-  if (s) napi_get_value_string_utf8(env, v, s, len + 1, &len);
-  return s;
-}
-
-static napi_value fail(napi_env env, const char *msg) {
-  napi_throw_error(env, NULL, msg);
-  return NULL;
-}
-
 /*
  * sortedKeys(database, mode, sql, bits, table) → Promise<{rows, nulls, outOfRange,
  * equal, pairs}>: runs on a connection of its own, off the JavaScript thread. `sql` selects the
@@ -451,17 +438,17 @@ static napi_value fail(napi_env env, const char *msg) {
 static napi_value sorted_keys(napi_env env, napi_callback_info info) {
   size_t argc = 5;
   napi_value argv[5];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 5) return fail(env, "sortedKeys(database, mode, sql, bits, table)");
-  void *holder = NULL;
-  if (napi_get_value_external(env, argv[0], &holder) != napi_ok || !holder || !*(duckdb_database *)holder) return fail(env, "sortedKeys: not an open DuckDB database");
+  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 5) return cairn_fail(env, "sortedKeys(database, mode, sql, bits, table)");
+  duckdb_database db = cairn_database(env, argv[0]);
+  if (!db) return cairn_fail(env, "sortedKeys: not an open DuckDB database");
   int32_t mode = -1, bits = 0;
   napi_get_value_int32(env, argv[1], &mode);
   napi_get_value_int32(env, argv[3], &bits);
-  if (mode != 0 && mode != 1) return fail(env, "sortedKeys: mode 0 (key statistics) or 1 (pairs)");
-  if (bits < 1 || bits > 64 || (mode == 1 && bits < 2)) return fail(env, "sortedKeys: bits from 1 to 64 (2 to 64 for pairs)");
+  if (mode != 0 && mode != 1) return cairn_fail(env, "sortedKeys: mode 0 (key statistics) or 1 (pairs)");
+  if (bits < 1 || bits > 64 || (mode == 1 && bits < 2)) return cairn_fail(env, "sortedKeys: bits from 1 to 64 (2 to 64 for pairs)");
   job *j = calloc(1, sizeof *j);
-  if (!j) return fail(env, "sortedKeys: out of memory");
-  j->db = *(duckdb_database *)holder;
+  if (!j) return cairn_fail(env, "sortedKeys: out of memory");
+  j->db = db;
   j->mode = mode;
   j->bits = bits;
   /* Partitions by the high bits; for pairs never the lowest bit, so that both reports of a pair share one. */
@@ -469,12 +456,12 @@ static napi_value sorted_keys(napi_env env, napi_callback_info info) {
   j->shift = bits - PART_BITS > low ? bits - PART_BITS : low;
   j->parts = (uint32_t)1 << (bits - j->shift);
   j->id = __atomic_add_fetch(&jobCounter, 1, __ATOMIC_RELAXED);
-  j->sql = string_arg(env, argv[2]);
+  j->sql = cairn_string(env, argv[2]);
   size_t len = 0;
   if (!j->sql || napi_get_value_string_utf8(env, argv[4], j->table, sizeof j->table, &len) != napi_ok || len >= sizeof j->table - 1) {
     free(j->sql);
     free(j);
-    return fail(env, "sortedKeys: sql and table (at most 254 bytes) must be strings");
+    return cairn_fail(env, "sortedKeys: sql and table (at most 254 bytes) must be strings");
   }
   pthread_mutex_init(&j->mu, NULL);
   arena_init(&j->blocks);

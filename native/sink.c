@@ -1,10 +1,12 @@
 /*
- * Shared by the native sinks (keysort.c, concsum.c): registering a scalar function that DuckDB
- * calls on its own worker threads with each chunk of a statement's rows, and running a statement.
+ * Shared by the native sinks (keysort.c, concsum.c) and the hand-off: registering a scalar
+ * function that DuckDB calls on its own worker threads with each chunk of a statement's rows,
+ * running a statement, and the N-API helpers of common.h.
  */
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
-#include "duckdb_api.h"
+#include "common.h"
 
 bool cairn_register_sink(duckdb_connection conn, const char *name, const int *params, int nparams, void *extra,
                          void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector)) {
@@ -37,4 +39,23 @@ bool cairn_run(duckdb_connection conn, const char *sql, char *error, size_t size
   }
   duckdb_destroy_result(&res);
   return ok;
+}
+
+napi_value cairn_fail(napi_env env, const char *msg) {
+  napi_throw_error(env, NULL, msg);
+  return NULL;
+}
+
+duckdb_database cairn_database(napi_env env, napi_value handle) {
+  void *holder = NULL;
+  if (napi_get_value_external(env, handle, &holder) != napi_ok || !holder) return NULL;
+  return *(duckdb_database *)holder;
+}
+
+char *cairn_string(napi_env env, napi_value v) {
+  size_t len = 0;
+  if (napi_get_value_string_utf8(env, v, NULL, 0, &len) != napi_ok) return NULL;
+  char *s = malloc(len + 1);
+  if (s) napi_get_value_string_utf8(env, v, s, len + 1, &len);
+  return s;
 }

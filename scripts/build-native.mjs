@@ -1,10 +1,11 @@
 // Builds the optional native libraries with the C compiler and Node's own headers: the hand-off
-// reader (native/handoff.c → build/cairn_handoff.node), linked to the libduckdb.so that
-// @duckdb/node-bindings ships; the cohort kernels (native/kernels.c → build/cairn_kernels.node);
+// reader with the sinks that sort keys and sum concordances on DuckDB's threads
+// (native/handoff.c, keysort.c, concsum.c, sink.c → build/cairn_handoff.node), linked to the
+// libduckdb.so that @duckdb/node-bindings ships; the cohort kernels (native/kernels.c → build/cairn_kernels.node);
 // the file-system exchange (native/fsx.c → build/cairn_fsx.node). Run by `npm ci` /
 // `npm install` and `npm run build`. It never fails the install: without a compiler, headers or
-// a matching DuckDB library it says why, and the hand-off uses the bindings' per-chunk calls
-// (slower, same result) and the cohort model the WebAssembly kernels.
+// a matching DuckDB library it says why, and the hand-off uses the bindings' per-chunk calls,
+// DuckDB sorts and joins itself (slower, same results) and the cohort model the WebAssembly kernels.
 import { execFileSync } from "node:child_process";
 import { existsSync, mkdirSync, readFileSync, rmSync, writeFileSync } from "node:fs";
 import { createRequire } from "node:module";
@@ -75,7 +76,10 @@ else {
   mkdirSync(path.dirname(out), { recursive: true });
   const cc = process.env.CC ?? "cc";
   try {
-    execFileSync(cc, ["-shared", "-fPIC", "-O2", "-Wall", "-I", inc, path.join(root, "native", "handoff.c"), path.join(root, "native", "keysort.c"), path.join(root, "native", "sink.c"), path.join(root, "native", "concsum.c"), "-O3", "-ffp-contract=off", "-pthread", "-lm", "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
+    // The hand-off and the native sinks (keysort.c, concsum.c) in one library. No fused
+    // multiply-add: concsum.c must compute the products the SQL computes, bit for bit.
+    const sources = ["handoff.c", "keysort.c", "concsum.c", "sink.c"].map((f) => path.join(root, "native", f));
+    execFileSync(cc, ["-shared", "-fPIC", "-O3", "-ffp-contract=off", "-pthread", "-Wall", "-I", inc, ...sources, "-lm", "-L", lib, "-l:libduckdb.so", `-Wl,-rpath,${lib}`, "-o", out], { stdio: "inherit" });
     writeFileSync(`${out}.json`, JSON.stringify({ bindings: bindingsVersion(), node: process.version }) + "\n");
     say(`built ${path.relative(root, out)}`);
   } catch (e) {

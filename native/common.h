@@ -1,11 +1,14 @@
 /*
- * The parts of DuckDB's C API (duckdb.h, DuckDB 1.x) that the native sinks use (keysort.c,
- * concsum.c), declared here because @duckdb/node-bindings ships the library without its header.
+ * Shared by the hand-off and the native sinks (handoff.c, keysort.c, concsum.c, sink.c): the
+ * parts of DuckDB's C API they use (duckdb.h, DuckDB 1.x), declared here because
+ * @duckdb/node-bindings ships the library without its header, and small N-API helpers.
  */
-#ifndef CAIRN_DUCKDB_API_H
-#define CAIRN_DUCKDB_API_H
+#ifndef CAIRN_COMMON_H
+#define CAIRN_COMMON_H
+#include <node_api.h>
 #include <stdbool.h>
 #include <stdint.h>
+#include <stddef.h>
 
 typedef uint64_t idx_t;
 typedef int duckdb_state;
@@ -27,6 +30,9 @@ typedef void *duckdb_logical_type;
 typedef void *duckdb_appender;
 enum { TYPE_BOOLEAN = 1, TYPE_INTEGER = 4, TYPE_BIGINT = 5, TYPE_UBIGINT = 9, TYPE_DOUBLE = 11 };
 
+extern idx_t duckdb_result_chunk_count(duckdb_result result);
+extern duckdb_data_chunk duckdb_result_get_chunk(duckdb_result result, idx_t chunk_index);
+extern idx_t duckdb_rows_changed(duckdb_result *result);
 extern duckdb_state duckdb_connect(duckdb_database database, duckdb_connection *out);
 extern void duckdb_disconnect(duckdb_connection *connection);
 extern duckdb_state duckdb_query(duckdb_connection connection, const char *query, duckdb_result *out);
@@ -67,4 +73,11 @@ bool cairn_register_sink(duckdb_connection conn, const char *name, const int *pa
 /* Runs `sql` on `conn`; on failure writes DuckDB's message to error. */
 bool cairn_run(duckdb_connection conn, const char *sql, char *error, size_t size);
 
-#endif
+/* Throws `msg` as a JavaScript error; returns NULL (for `return cairn_fail(…)`). */
+napi_value cairn_fail(napi_env env, const char *msg);
+/* The database in a @duckdb/node-bindings database handle (a struct whose first field is the duckdb_database), or NULL. */
+duckdb_database cairn_database(napi_env env, napi_value handle);
+/* A JavaScript string as a malloc'ed C string, or NULL. */
+char *cairn_string(napi_env env, napi_value v);
+
+#endif /* CAIRN_COMMON_H */
