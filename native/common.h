@@ -79,5 +79,10 @@ napi_value cairn_fail(napi_env env, const char *msg);
 duckdb_database cairn_database(napi_env env, napi_value handle);
 /* A JavaScript string as a malloc'ed C string, or NULL. */
 char *cairn_string(napi_env env, napi_value v);
+/* Queues execute/complete as async work named `name` on libuv's pool; returns its promise. */
+napi_value cairn_queue(napi_env env, const char *name, napi_async_execute_callback execute, napi_async_complete_callback complete,
+                       void *data, napi_deferred *deferred, napi_async_work *work);
+/* Rejects `deferred` with an Error of message `error`. */
+void cairn_reject(napi_env env, napi_deferred deferred, const char *error);
 
 #endif /* CAIRN_COMMON_H */

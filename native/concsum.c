@@ -243,10 +243,7 @@ static void complete(napi_env env, napi_status status, void *data) {
   napi_value v;
   if (status != napi_ok && !j->error[0]) snprintf(j->error, sizeof j->error, "concordance sums: cancelled");
   if (j->error[0]) {
-    napi_value msg;
-    napi_create_string_utf8(env, j->error, NAPI_AUTO_LENGTH, &msg);
-    napi_create_error(env, NULL, msg, &v);
-    napi_reject_deferred(env, j->deferred, v);
+    cairn_reject(env, j->deferred, j->error);
   } else {
     napi_create_object(env, &v);
     napi_value x;
@@ -348,12 +345,7 @@ static napi_value concordance_sums(napi_env env, napi_callback_info info) {
   }
   j->id = __atomic_add_fetch(&jobCounter, 1, __ATOMIC_RELAXED);
   pthread_mutex_init(&j->mu, NULL);
-  napi_value promise, name;
-  napi_create_promise(env, &j->deferred, &promise);
-  napi_create_string_utf8(env, "cairn.concordanceSums", NAPI_AUTO_LENGTH, &name);
-  napi_create_async_work(env, NULL, name, execute, complete, j, &j->work);
-  napi_queue_async_work(env, j->work);
-  return promise;
+  return cairn_queue(env, "cairn.concordanceSums", execute, complete, j, &j->deferred, &j->work);
 }
 
 void cairn_register_concsum(napi_env env, napi_value exports) {

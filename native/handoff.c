@@ -262,10 +262,7 @@ static void scan_complete(napi_env env, napi_status status, void *data) {
   napi_value v;
   if (status != napi_ok && !j->error[0]) snprintf(j->error, sizeof j->error, "the scan was cancelled");
   if (j->error[0]) {
-    napi_value msg;
-    napi_create_string_utf8(env, j->error, NAPI_AUTO_LENGTH, &msg);
-    napi_create_error(env, NULL, msg, &v);
-    napi_reject_deferred(env, j->deferred, v);
+    cairn_reject(env, j->deferred, j->error);
   } else {
     napi_create_double(env, j->changed, &v);
     napi_resolve_deferred(env, j->deferred, v);
@@ -339,12 +336,7 @@ static napi_value scan_arrays(napi_env env, napi_callback_info info) {
     return cairn_fail(env, bad);
   }
   a->root = (struct ArrowSchema){ "+s", "", NULL, 0, ncols, a->colp, NULL, schema_noop, NULL };
-  napi_value promise, name;
-  napi_create_promise(env, &j->deferred, &promise);
-  napi_create_string_utf8(env, "cairn.scanArrays", NAPI_AUTO_LENGTH, &name);
-  napi_create_async_work(env, NULL, name, scan_execute, scan_complete, j, &j->work);
-  napi_queue_async_work(env, j->work);
-  return promise;
+  return cairn_queue(env, "cairn.scanArrays", scan_execute, scan_complete, j, &j->deferred, &j->work);
 }
 
 void cairn_register_keysort(napi_env env, napi_value exports); /* keysort.c */

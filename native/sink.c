@@ -59,3 +59,20 @@ char *cairn_string(napi_env env, napi_value v) {
   if (s) napi_get_value_string_utf8(env, v, s, len + 1, &len);
   return s;
 }
+
+napi_value cairn_queue(napi_env env, const char *name, napi_async_execute_callback execute, napi_async_complete_callback complete,
+                       void *data, napi_deferred *deferred, napi_async_work *work) {
+  napi_value promise, resource;
+  napi_create_promise(env, deferred, &promise);
+  napi_create_string_utf8(env, name, NAPI_AUTO_LENGTH, &resource);
+  napi_create_async_work(env, NULL, resource, execute, complete, data, work);
+  napi_queue_async_work(env, *work);
+  return promise;
+}
+
+void cairn_reject(napi_env env, napi_deferred deferred, const char *error) {
+  napi_value msg, err;
+  napi_create_string_utf8(env, error, NAPI_AUTO_LENGTH, &msg);
+  napi_create_error(env, NULL, msg, &err);
+  napi_reject_deferred(env, deferred, err);
+}
