@@ -35,7 +35,7 @@
 
 #include "common.h"
 
-/* ---- memory: 256 MiB chunks advised for huge pages, handed out by bumping ---- */
+/* ---- memory: chunks (256 MiB, or less under a small budget) advised for huge pages, handed out by bumping ---- */
 
 #define CHUNK ((size_t)256 << 20)
 #define SLAB ((size_t)2 << 20)
@@ -45,22 +45,31 @@ typedef struct {
   char *chunk[MAXCHUNKS];
   size_t size[MAXCHUNKS];
   int n;
-  size_t used; /* in the last chunk */
+  size_t used;    /* in the last chunk */
+  size_t *mapped; /* bytes mapped by all arenas of the job, against … */
+  size_t cap;     /* … the job's budget (0: none) */
+  size_t chunkSize;
 } arena;
 
-static void arena_init(arena *a) {
+static void arena_init(arena *a, size_t *mapped, size_t cap) {
   memset(a, 0, sizeof *a);
   pthread_mutex_init(&a->mu, NULL);
+  a->mapped = mapped;
+  a->cap = cap;
+  /* Chunks of 256 MiB, or an eighth of a smaller budget (at least one slab). */
+  a->chunkSize = cap && cap / 8 < CHUNK ? (cap / 8 > SLAB ? cap / 8 / SLAB * SLAB : SLAB) : CHUNK;
 }
 
-/* size bytes (16-aligned), or NULL when out of memory. Thread-safe. */
+/* size bytes (16-aligned), or NULL when out of memory or over the budget. Thread-safe. */
 static void *arena_take(arena *a, size_t size) {
   size = (size + 15) & ~(size_t)15;
   pthread_mutex_lock(&a->mu);
   void *p = NULL;
   if (a->n == 0 || a->used + size > a->size[a->n - 1]) {
-    size_t want = size > CHUNK ? (size + SLAB - 1) & ~(SLAB - 1) : CHUNK;
-    if (a->n < MAXCHUNKS) {
+    size_t want = size > a->chunkSize ? (size + SLAB - 1) & ~(SLAB - 1) : a->chunkSize;
+    size_t before = __atomic_fetch_add(a->mapped, want, __ATOMIC_RELAXED);
+    if (a->cap && before + want > a->cap) __atomic_fetch_sub(a->mapped, want, __ATOMIC_RELAXED);
+    else if (a->n < MAXCHUNKS) {
       char *c = mmap(NULL, want, PROT_READ | PROT_WRITE, MAP_PRIVATE | MAP_ANONYMOUS | MAP_NORESERVE, -1, 0);
       if (c != MAP_FAILED) {
         madvise(c, want, MADV_HUGEPAGE);
@@ -80,7 +89,10 @@ static void *arena_take(arena *a, size_t size) {
 }
 
 static void arena_free(arena *a) {
-  for (int i = 0; i < a->n; i++) munmap(a->chunk[i], a->size[i]);
+  for (int i = 0; i < a->n; i++) {
+    munmap(a->chunk[i], a->size[i]);
+    __atomic_fetch_sub(a->mapped, a->size[i], __ATOMIC_RELAXED);
+  }
   a->n = 0;
   a->used = 0;
 }
@@ -120,6 +132,8 @@ typedef struct job {
   uint32_t nextPart;
   pairs_out *out; /* mode 1: per partition */
   uint64_t rows, nulls, outOfRange, equal, pairs;
+  size_t mapped, cap; /* bytes mapped, budget (0: none) */
+  int over;           /* the budget was reached: rows were dropped, nothing is sorted or appended */
   char error[1024];
   napi_deferred deferred;
   napi_async_work work;
@@ -170,6 +184,8 @@ static inline bool valid(const uint64_t *mask, idx_t i) { return !mask || (mask[
 static void sink(duckdb_function_info info, duckdb_data_chunk input, duckdb_vector output) {
   job *j = (job *)duckdb_scalar_function_get_extra_info(info);
   idx_t n = duckdb_data_chunk_get_size(input);
+  memset(duckdb_vector_get_data(output), 0, n * sizeof(int32_t));
+  if (__atomic_load_n(&j->over, __ATOMIC_RELAXED)) return;
   local *L = tlsJob == j->id ? tlsLocal : attach(j);
   if (!L) {
     duckdb_scalar_function_set_error(info, "sorted keys: out of memory (thread state)");
@@ -185,7 +201,6 @@ static void sink(duckdb_function_info info, duckdb_data_chunk input, duckdb_vect
     v = (const int64_t *)duckdb_vector_get_data(vv);
     vm = duckdb_vector_get_validity(vv);
   }
-  memset(duckdb_vector_get_data(output), 0, n * sizeof(int32_t));
   const int shift = j->shift, bits = j->bits;
   for (idx_t i = 0; i < n; i++) {
     if (!valid(km, i) || (v && !valid(vm, i))) { L->nulls++; continue; }
@@ -195,8 +210,8 @@ static void sink(duckdb_function_info info, duckdb_data_chunk input, duckdb_vect
     block *b = L->head[p];
     if (!b || b->n == BLOCK_RECS) {
       b = new_block(L, b);
-      if (!b) {
-        duckdb_scalar_function_set_error(info, "sorted keys: out of memory");
+      if (!b) { /* over the budget (or out of memory): the caller sorts in SQL instead */
+        __atomic_store_n(&j->over, 1, __ATOMIC_RELAXED);
         return;
       }
       L->head[p] = b;
@@ -279,9 +294,7 @@ static void *sort_parts(void *arg) {
     pairs_out *o = &j->out[p];
     o->k = arena_take(&j->outs, np * 3 * sizeof(int64_t));
     if (!o->k) {
-      pthread_mutex_lock(&j->mu);
-      snprintf(j->error, sizeof j->error, "sorted keys: out of memory (%zu pairs)", np);
-      pthread_mutex_unlock(&j->mu);
+      __atomic_store_n(&j->over, 1, __ATOMIC_RELAXED);
       break;
     }
     o->m = o->k + np;
@@ -366,7 +379,7 @@ static void execute(napi_env env, void *data) {
       free(q);
     }
   }
-  if (ok) {
+  if (ok && !j->over) {
     for (int l = 0; l < j->nlocals; l++) {
       j->rows += j->locals[l]->rows;
       j->nulls += j->locals[l]->nulls;
@@ -383,7 +396,7 @@ static void execute(napi_env env, void *data) {
       sort_parts(j);
       for (int i = 0; i < started; i++) pthread_join(th[i], NULL);
       arena_free(&j->blocks);
-      if (!j->error[0] && j->mode == 1 && j->equal == 0) append_pairs(j, conn);
+      if (!j->error[0] && !j->over && j->mode == 1 && j->equal == 0) append_pairs(j, conn);
     }
   }
   arena_free(&j->blocks);
@@ -410,6 +423,7 @@ static void complete(napi_env env, napi_status status, void *data) {
     set_num(env, v, "outOfRange", (double)j->outOfRange);
     set_num(env, v, "equal", (double)j->equal);
     set_num(env, v, "pairs", (double)j->pairs);
+    set_num(env, v, "overBudget", j->over);
     napi_resolve_deferred(env, j->deferred, v);
   }
   for (int l = 0; l < j->nlocals; l++) {
@@ -425,17 +439,20 @@ static void complete(napi_env env, napi_status status, void *data) {
 }
 
 /*
- * sortedKeys(database, mode, sql, bits, table) → Promise<{rows, nulls, outOfRange,
- * equal, pairs}>: runs on a connection of its own, off the JavaScript thread. `sql` selects the
+ * sortedKeys(database, mode, sql, bits, table, budget) → Promise<{rows, nulls, outOfRange,
+ * equal, pairs, overBudget}>: runs on a connection of its own, off the JavaScript thread. `sql` selects the
  * key (UBIGINT in mode 0, BIGINT in mode 1) and in mode 1 the value (BIGINT); keys lie in
  * [0, 2^bits). Mode 1 appends the pairs to `table` (three BIGINT columns, created by the
  * caller outside any TEMP schema: it must be seen from this connection) unless a key repeats
  * (equal > 0). Settings made with SET on the caller's connection are global and hold here too.
+ * The rows' memory (16 bytes a row, in 256 MiB chunks) stays within `budget` bytes (0: no
+ * limit); beyond it the job stops taking rows, sorts nothing and says overBudget = 1, and the
+ * caller sorts in SQL, where DuckDB can spill to disk.
  */
 static napi_value sorted_keys(napi_env env, napi_callback_info info) {
-  size_t argc = 5;
-  napi_value argv[5];
-  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 5) return cairn_fail(env, "sortedKeys(database, mode, sql, bits, table)");
+  size_t argc = 6;
+  napi_value argv[6];
+  if (napi_get_cb_info(env, info, &argc, argv, NULL, NULL) != napi_ok || argc < 6) return cairn_fail(env, "sortedKeys(database, mode, sql, bits, table, budget)");
   duckdb_database db = cairn_database(env, argv[0]);
   if (!db) return cairn_fail(env, "sortedKeys: not an open DuckDB database");
   int32_t mode = -1, bits = 0;
@@ -448,6 +465,9 @@ static napi_value sorted_keys(napi_env env, napi_callback_info info) {
   j->db = db;
   j->mode = mode;
   j->bits = bits;
+  double budget = 0;
+  napi_get_value_double(env, argv[5], &budget);
+  j->cap = budget > 0 ? (size_t)budget : 0;
   /* Partitions by the high bits; for pairs never the lowest bit, so that both reports of a pair share one. */
   int low = mode == 1 ? 1 : 0;
   j->shift = bits - PART_BITS > low ? bits - PART_BITS : low;
@@ -461,8 +481,8 @@ static napi_value sorted_keys(napi_env env, napi_callback_info info) {
     return cairn_fail(env, "sortedKeys: sql and table (at most 254 bytes) must be strings");
   }
   pthread_mutex_init(&j->mu, NULL);
-  arena_init(&j->blocks);
-  arena_init(&j->outs);
+  arena_init(&j->blocks, &j->mapped, j->cap);
+  arena_init(&j->outs, &j->mapped, j->cap);
   return cairn_queue(env, "cairn.sortedKeys", execute, complete, j, &j->deferred, &j->work);
 }
 

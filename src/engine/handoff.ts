@@ -26,7 +26,7 @@ interface NativeReader {
   concordanceSums(db: duckdb.Database, sql: string, dims: number[], cstart: Int32Array, ck: Int32Array, factor: Float64Array, share: Float64Array, first: Int32Array):
     Promise<{ invalid: number; cells: number; ints: Int32Array; sums: BigInt64Array }>;
   /** native/keysort.c: see sortedKeys below. */
-  sortedKeys(db: duckdb.Database, mode: 0 | 1, sql: string, bits: number, table: string): Promise<SortedKeyCounts>;
+  sortedKeys(db: duckdb.Database, mode: 0 | 1, sql: string, bits: number, table: string, budget: number): Promise<SortedKeyCounts>;
 }
 
 let native: NativeReader | null | undefined;
@@ -224,18 +224,37 @@ export interface SortedKeyCounts {
   equal: number;
   /** Pairs appended (pairs only). */
   pairs: number;
+  /** 1 when the rows would not fit the memory budget: nothing was counted or appended; sort in SQL. */
+  overBudget: number;
+}
+
+/**
+ * Bytes the native sorts may hold: DuckDB's memory limit (the user's --memory-limit, or
+ * DuckDB's default of 80 % of the memory), so that rows beyond it are sorted by DuckDB, which
+ * can spill to disk; CAIRN_SINK_MAX_BYTES overrides it (tests).
+ */
+async function sinkBudget(s: Session): Promise<number> {
+  const env = Number(process.env.CAIRN_SINK_MAX_BYTES);
+  if (env > 0) return env;
+  const v = String(await s.scalar("SELECT current_setting('memory_limit')"));
+  const m = /^([\d.]+)\s*(bytes|[KMGTP]i?B)$/i.exec(v.trim());
+  if (!m) return 0;
+  const unit = m[2]!.toUpperCase();
+  const pow = unit === "BYTES" ? 0 : "KMGTP".indexOf(unit[0]!) + 1;
+  return Number(m[1]) * (unit.includes("I") || unit === "BYTES" ? 1024 : 1000) ** pow;
 }
 
 /**
  * Key statistics from sorted 64-bit keys, sorted outside DuckDB (native/keysort.c): `sql`
  * selects one UBIGINT key (e.g. a hash of a source's key columns; NULL for rows to leave out);
  * returns how many rows, NULL keys, and keys equal to the one before them. Null without the
- * native library (callers then sort in SQL).
+ * native library or beyond the memory budget (callers then sort in SQL).
  */
-export function sortedKeyCounts(s: Session, sql: string): Promise<SortedKeyCounts> | null {
+export async function sortedKeyCounts(s: Session, sql: string): Promise<SortedKeyCounts | null> {
   const nat = nativeReader();
   if (!nat?.sortedKeys) return null;
-  return nat.sortedKeys((s.instance as unknown as { db: duckdb.Database }).db, 0, sql, 64, "");
+  const r = await nat.sortedKeys((s.instance as unknown as { db: duckdb.Database }).db, 0, sql, 64, "", await sinkBudget(s));
+  return r.overBudget ? null : r;
 }
 
 /**
@@ -243,10 +262,12 @@ export function sortedKeyCounts(s: Session, sql: string): Promise<SortedKeyCount
  * 2·pair + flow, and a BIGINT value; an odd key right after key − 1 closes a pair, appended to
  * `table` (pair BIGINT, value of the odd key BIGINT, value of the even key BIGINT; a table of
  * the main schema, not TEMP: the work runs on a connection of its own) in key order, unless
- * some key repeats (`equal` > 0: nothing is appended). Null without the native library.
+ * some key repeats (`equal` > 0: nothing is appended). Null without the native library or
+ * beyond the memory budget (nothing appended; callers then sort in SQL).
  */
-export function sortedKeyPairs(s: Session, sql: string, bits: number, table: string): Promise<SortedKeyCounts> | null {
+export async function sortedKeyPairs(s: Session, sql: string, bits: number, table: string): Promise<SortedKeyCounts | null> {
   const nat = nativeReader();
   if (!nat?.sortedKeys) return null;
-  return nat.sortedKeys((s.instance as unknown as { db: duckdb.Database }).db, 1, sql, bits, table);
+  const r = await nat.sortedKeys((s.instance as unknown as { db: duckdb.Database }).db, 1, sql, bits, table, await sinkBudget(s));
+  return r.overBudget ? null : r;
 }

@@ -96,9 +96,8 @@ export async function asymmetryItems(s: Session, a: AsymmetryInput, grouped = fa
   // reports here, against 22.8 s for DuckDB's window sort; its connection sees the dictionaries
   // and the pairs table because they are not TEMP), else by DuckDB.
   await s.run(`CREATE OR REPLACE TABLE ${pairs} (k BIGINT, m_units BIGINT, x_units BIGINT)`);
-  const sorted = sortedKeyPairs(s, reports, Math.max(2, Math.ceil(Math.log2(2 * R * R * C * Y))), `${a.prefix}_pairs`);
-  if (sorted) {
-    const r = await sorted;
+  const r = await sortedKeyPairs(s, reports, Math.max(2, Math.ceil(Math.log2(2 * R * R * C * Y))), `${a.prefix}_pairs`);
+  if (r) {
     if (r.equal + r.nulls + r.outOfRange > 0) return byGrouping();
   } else {
     await s.run(`CREATE OR REPLACE TABLE ${pairs} AS

@@ -265,16 +265,13 @@ function pct(n: number, d: number): string {
  * columns shared with another good row (shared; equal keys have equal hashes, so 0 proves the
  * keys unique). The hashes are sorted outside DuckDB where the native library is built
  * (native/keysort.c: 3.5 s for 10^8 trade rows here, against 11.4 s for DuckDB's window sort),
- * else by DuckDB.
+ * else (or beyond the memory limit) by DuckDB.
  */
 async function keyHashScan(s: Session, view: string, keyCols: string[]): Promise<{ bad: number; shared: number }> {
   if (keyCols.length === 0) return { bad: Number(await s.scalar(`SELECT count(*) FILTER (WHERE __reason IS NOT NULL) FROM ${ident(view)}`)), shared: 0 };
   const h = `CASE WHEN __reason IS NULL THEN hash(${idents(keyCols)}) END`;
-  const sorted = sortedKeyCounts(s, `SELECT ${h} FROM ${ident(view)}`);
-  if (sorted) {
-    const r = await sorted;
-    return { bad: r.nulls, shared: r.equal };
-  }
+  const r = await sortedKeyCounts(s, `SELECT ${h} FROM ${ident(view)}`);
+  if (r) return { bad: r.nulls, shared: r.equal };
   const [scan] = await s.all(`SELECT count(*) FILTER (WHERE h IS NULL) AS bad, count(*) FILTER (WHERE h = p) AS shared
     FROM (SELECT h, lag(h) OVER (ORDER BY h) AS p FROM (SELECT ${h} AS h FROM ${ident(view)}))`);
   return { bad: Number(scan!.bad), shared: Number(scan!.shared) };

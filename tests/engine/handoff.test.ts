@@ -102,7 +102,14 @@ describe("sorted keys outside DuckDB (native/keysort.c)", () => {
       const r = await sortedKeyCounts(s, sql);
       expect(r).not.toBeNull();
       const ref = await s.one(`SELECT count(*) AS rows, count(*) - count(h) AS nulls, count(h) - count(DISTINCT h) AS equal FROM (${sql}) q(h)`);
-      expect(r).toEqual({ rows: Number(ref.rows), nulls: Number(ref.nulls), outOfRange: 0, equal: Number(ref.equal), pairs: 0 });
+      expect(r).toEqual({ rows: Number(ref.rows), nulls: Number(ref.nulls), outOfRange: 0, equal: Number(ref.equal), pairs: 0, overBudget: 0 });
+      // beyond the memory budget: no answer (the caller sorts in SQL)
+      process.env.CAIRN_SINK_MAX_BYTES = "1000000";
+      try {
+        expect(await sortedKeyCounts(s, sql)).toBeNull();
+      } finally {
+        delete process.env.CAIRN_SINK_MAX_BYTES;
+      }
     } finally {
       s.close();
     }

@@ -96,6 +96,18 @@ describe("trade asymmetry: pairs found by sorted numbered keys = pairs found by 
     await a.cleanup();
   });
 
+  it("beyond the memory budget the native sort takes no more rows and DuckDB sorts them: the same items", async () => {
+    process.env.CAIRN_SINK_MAX_BYTES = String(4 << 20); // 300,000 reports need 4.8 MB
+    let over;
+    try {
+      over = await items("big");
+    } finally {
+      delete process.env.CAIRN_SINK_MAX_BYTES;
+    }
+    expect(over.path).toBe("sorted keys");
+    expect(over.rows).toEqual((await items("big", true)).rows);
+  });
+
   it("a duplicate report among 300,000 sends the native sort to the general way too", async () => {
     await s.run(`CREATE TABLE bigdup AS SELECT * FROM big UNION ALL (SELECT * FROM big WHERE flow = 'export' LIMIT 1)`);
     const r = await items("bigdup");
