@@ -100,9 +100,11 @@ static void arena_free(arena *a) {
 /* ---- the job ---- */
 
 typedef struct { uint64_t k; int64_t v; } rec;
-#define BLOCK_BYTES 16384
-#define BLOCK_RECS ((BLOCK_BYTES - 16) / sizeof(rec))
-typedef struct block { struct block *prev; uint64_t n; rec r[BLOCK_RECS]; } block;
+/* A partition's rows in a chain of blocks, each twice the one before (16 rows up to 1,023:
+   16 KiB), so that 4,096 partitions of a small statement take little memory. */
+#define BLOCK_MIN 16
+#define BLOCK_MAX 1023
+typedef struct block { struct block *prev; uint32_t n, cap; rec r[]; } block;
 #define MAXLOCALS 64
 #define PART_BITS 12
 
@@ -165,16 +167,19 @@ static local *attach(job *j) {
 }
 
 static block *new_block(local *L, block *prev) {
-  if (L->slabLeft < BLOCK_BYTES) {
+  uint32_t cap = prev ? (prev->cap * 2 + 1 < BLOCK_MAX ? prev->cap * 2 + 1 : BLOCK_MAX) : BLOCK_MIN;
+  size_t bytes = sizeof(block) + cap * sizeof(rec);
+  if (L->slabLeft < bytes) {
     L->slab = arena_take(&L->job->blocks, SLAB);
     L->slabLeft = L->slab ? SLAB : 0;
     if (!L->slab) return NULL;
   }
   block *b = (block *)L->slab;
-  L->slab += BLOCK_BYTES;
-  L->slabLeft -= BLOCK_BYTES;
+  L->slab += bytes;
+  L->slabLeft -= bytes;
   b->prev = prev;
   b->n = 0;
+  b->cap = cap;
   return b;
 }
 
@@ -208,7 +213,7 @@ static void sink(duckdb_function_info info, duckdb_data_chunk input, duckdb_vect
     if (bits < 64 && (key >> bits)) { L->outOfRange++; continue; }
     uint32_t p = (uint32_t)(key >> shift);
     block *b = L->head[p];
-    if (!b || b->n == BLOCK_RECS) {
+    if (!b || b->n == b->cap) {
       b = new_block(L, b);
       if (!b) { /* over the budget (or out of memory): the caller sorts in SQL instead */
         __atomic_store_n(&j->over, 1, __ATOMIC_RELAXED);
