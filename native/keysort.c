@@ -20,7 +20,7 @@
  * DuckDB C API used (DuckDB 1.x): duckdb_create_scalar_function and its setters,
  * duckdb_register_scalar_function, duckdb_scalar_function_get_extra_info,
  * duckdb_scalar_function_set_error, duckdb_create_logical_type, duckdb_appender_create,
- * duckdb_append_data_chunk, duckdb_create_data_chunk; see handoff.c for the rest.
+ * duckdb_append_data_chunk, duckdb_create_data_chunk (declared in common.h).
  */
 #define _GNU_SOURCE
 #include <node_api.h>
