@@ -67,9 +67,14 @@ extern void duckdb_data_chunk_set_size(duckdb_data_chunk chunk, idx_t size);
 extern idx_t duckdb_vector_size(void);
 
 
-/* Registers a scalar function `name`(params…) → INTEGER on `conn`, called with `extra`. */
-bool cairn_register_sink(duckdb_connection conn, const char *name, const int *params, int nparams, void *extra,
-                         void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector));
+/*
+ * Feeds the rows of `sql` (nparams columns, of the types params) to `fn` on DuckDB's threads:
+ * registers `fn` on `conn` as the scalar function <prefix><id> → INTEGER (volatile, NULLs passed
+ * in, called with `extra`) and runs SELECT sum(fn(c0, …)) FROM (sql). On failure writes the
+ * reason to error.
+ */
+bool cairn_run_sink(duckdb_connection conn, const char *prefix, uint64_t id, const int *params, int nparams, void *extra,
+                    void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector), const char *sql, char *error, size_t size);
 /* Runs `sql` on `conn`; on failure writes DuckDB's message to error. */
 bool cairn_run(duckdb_connection conn, const char *sql, char *error, size_t size);
 

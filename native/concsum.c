@@ -166,21 +166,8 @@ static void execute(napi_env env, void *data) {
     snprintf(j->error, sizeof j->error, "concordance sums: cannot open a connection");
     return;
   }
-  char name[64];
-  snprintf(name, sizeof name, "__cairn_conc_%llu", (unsigned long long)j->id);
   const int params[8] = { TYPE_INTEGER, TYPE_INTEGER, TYPE_INTEGER, TYPE_INTEGER, TYPE_DOUBLE, TYPE_BIGINT, TYPE_BOOLEAN, TYPE_BOOLEAN };
-  bool ok = cairn_register_sink(conn, name, params, 8, j, sink);
-  if (!ok) snprintf(j->error, sizeof j->error, "concordance sums: cannot register %s", name);
-  if (ok) {
-    size_t len = strlen(j->sql) + 256;
-    char *q = malloc(len);
-    if (!q) ok = false, snprintf(j->error, sizeof j->error, "concordance sums: out of memory");
-    else {
-      snprintf(q, len, "SELECT sum(%s(c0, c1, c2, c3, c4, c5, c6, c7)) FROM (%s) AS q(c0, c1, c2, c3, c4, c5, c6, c7)", name, j->sql);
-      ok = cairn_run(conn, q, j->error, sizeof j->error);
-      free(q);
-    }
-  }
+  bool ok = cairn_run_sink(conn, "__cairn_conc_", j->id, params, 8, j, sink, j->sql, j->error, sizeof j->error);
   duckdb_disconnect(&conn);
   if (!ok || j->invalid) return;
   /* Add the threads' cells into the first; keep those that received rows. */

@@ -369,21 +369,8 @@ static void execute(napi_env env, void *data) {
     snprintf(j->error, sizeof j->error, "sorted keys: cannot open a connection");
     return;
   }
-  char name[64];
-  snprintf(name, sizeof name, "__cairn_keys_%llu", (unsigned long long)j->id);
   const int params[2] = { j->mode == 0 ? TYPE_UBIGINT : TYPE_BIGINT, TYPE_BIGINT };
-  bool ok = cairn_register_sink(conn, name, params, j->mode == 0 ? 1 : 2, j, sink);
-  if (!ok) snprintf(j->error, sizeof j->error, "sorted keys: cannot register %s", name);
-  if (ok) {
-    size_t len = strlen(j->sql) + 256;
-    char *q = malloc(len);
-    if (!q) ok = false, snprintf(j->error, sizeof j->error, "sorted keys: out of memory");
-    else {
-      snprintf(q, len, j->mode == 0 ? "SELECT sum(%s(c0)) FROM (%s) AS q(c0)" : "SELECT sum(%s(c0, c1)) FROM (%s) AS q(c0, c1)", name, j->sql);
-      ok = cairn_run(conn, q, j->error, sizeof j->error);
-      free(q);
-    }
-  }
+  bool ok = cairn_run_sink(conn, "__cairn_keys_", j->id, params, j->mode == 0 ? 1 : 2, j, sink, j->sql, j->error, sizeof j->error);
   if (ok && !j->over) {
     for (int l = 0; l < j->nlocals; l++) {
       j->rows += j->locals[l]->rows;

@@ -8,8 +8,8 @@
 #include <string.h>
 #include "common.h"
 
-bool cairn_register_sink(duckdb_connection conn, const char *name, const int *params, int nparams, void *extra,
-                         void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector)) {
+static bool register_sink(duckdb_connection conn, const char *name, const int *params, int nparams, void *extra,
+                          void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector)) {
   duckdb_scalar_function f = duckdb_create_scalar_function();
   duckdb_scalar_function_set_name(f, name);
   for (int i = 0; i < nparams; i++) {
@@ -75,4 +75,26 @@ void cairn_reject(napi_env env, napi_deferred deferred, const char *error) {
   napi_create_string_utf8(env, error, NAPI_AUTO_LENGTH, &msg);
   napi_create_error(env, NULL, msg, &err);
   napi_reject_deferred(env, deferred, err);
+}
+
+bool cairn_run_sink(duckdb_connection conn, const char *prefix, uint64_t id, const int *params, int nparams, void *extra,
+                    void (*fn)(duckdb_function_info, duckdb_data_chunk, duckdb_vector), const char *sql, char *error, size_t size) {
+  char name[64];
+  snprintf(name, sizeof name, "%s%llu", prefix, (unsigned long long)id);
+  if (!register_sink(conn, name, params, nparams, extra, fn)) {
+    snprintf(error, size, "cannot register %s", name);
+    return false;
+  }
+  char cols[256] = "";
+  for (int i = 0; i < nparams && strlen(cols) < sizeof cols - 16; i++) snprintf(cols + strlen(cols), sizeof cols - strlen(cols), "%sc%d", i ? ", " : "", i);
+  size_t len = strlen(sql) + 2 * strlen(cols) + 128;
+  char *q = malloc(len);
+  if (!q) {
+    snprintf(error, size, "out of memory");
+    return false;
+  }
+  snprintf(q, len, "SELECT sum(%s(%s)) FROM (%s) AS q(%s)", name, cols, sql, cols);
+  bool ok = cairn_run(conn, q, error, size);
+  free(q);
+  return ok;
 }
